@@ -1,0 +1,175 @@
+"""The input-driver contract and the driver registry.
+
+A driver is a :class:`Source` subclass registered under a short name in the
+entry-point group ``livefilt.drivers`` (the built-ins exactly like a third
+party's plug-in).  Drivers live in ``drivers/`` (installed as
+``livefilt.drivers``) and know nothing of filters, the engine or Qt.
+
+Real-time contract
+------------------
+A driver's thread or audio callback only copies samples into the
+:class:`~livefilt.ring.Ring` it was given in :meth:`Source.start` (``ring.write``)
+and reports losses with ``ring.mark_gap``; it does no filtering, no file I/O
+and no logging per block.  When its data ends for good (end of a file) it
+calls ``ring.close()``.
+
+Lifecycle::
+
+    src = load_driver("simulated").from_settings(options, rate_hz=48000, block=256)
+    ring = Ring(src.channels, capacity)
+    src.start(ring)        # returns at once; samples flow
+    ...
+    src.stop()             # idempotent; joins threads, closes the device
+
+``livefilt.drivers`` modules are imported only when chosen, so importing
+livefilt needs neither PortAudio nor Qt.
+"""
+
+from __future__ import annotations
+
+import logging
+from importlib import metadata
+from typing import Any, ClassVar
+
+from .errors import SettingError, SourceUnavailable
+
+__all__ = ["Source", "DeviceInfo", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
+
+log = logging.getLogger(__name__)
+
+ENTRY_POINT_GROUP = "livefilt.drivers"
+
+
+class DeviceInfo(dict):
+    """One device a driver can see now: ``name`` plus free-form details."""
+
+
+class Source:
+    """Base class of input drivers.
+
+    Class attributes
+    ----------------
+    driver : str
+        The registry name (``"simulated"``, ``"soundcard"`` ...).
+    options : dict
+        Driver-specific keys of the ``[source]`` table it accepts, each mapped
+        to a one-line description (shown by ``livefilt sources``).
+
+    Instance attributes set by ``from_settings``
+    --------------------------------------------
+    rate_hz : float
+        Sample rate of the frames written to the ring.
+    channels : int
+        Channels per frame.
+    channel_names : list of str
+        One name per channel (``"detector"``, ``"reference"`` ...).
+    units : str
+        ``"V"`` when calibrated, else ``"FS"`` (full scale, 1.0 = clipping).
+    device : str
+        Human-readable device description for the status line and run.toml.
+    realtime : bool
+        True when samples arrive paced by a clock (hardware or simulated real
+        time), False when the source runs as fast as the consumer reads.
+    reference_hint : dict or None
+        What the source knows about the modulation (``frequency_hz``,
+        ``phase_deg``), e.g. from a firmware's self-description.
+    """
+
+    driver: ClassVar[str] = ""
+    options: ClassVar[dict[str, str]] = {}
+
+    rate_hz: float = 0.0
+    channels: int = 1
+    channel_names: list[str] = ["in0"]
+    units: str = "FS"
+    device: str = ""
+    realtime: bool = True
+    reference_hint: dict | None = None
+
+    # -- construction --------------------------------------------------
+    @classmethod
+    def from_settings(cls, options: dict[str, Any], rate_hz: float, block: int) -> "Source":
+        """Build the source from the ``[source]`` table's driver-specific keys.
+
+        Raises :class:`~livefilt.errors.SettingError` with field paths
+        relative to ``source`` (``"port"``) for invalid options.
+        """
+        raise NotImplementedError
+
+    @classmethod
+    def probe(cls) -> list[DeviceInfo]:
+        """Devices this driver can see now.
+
+        Raises :class:`~livefilt.errors.SourceUnavailable` with a one-line
+        reason (e.g. how to install a missing library) when it cannot look.
+        """
+        return []
+
+    # -- running -------------------------------------------------------
+    def start(self, ring) -> None:
+        """Begin writing frames into ``ring``; return at once."""
+        raise NotImplementedError
+
+    def stop(self) -> None:
+        """Stop producing and release the device; safe to call twice."""
+
+    def info(self) -> dict[str, Any]:
+        """Facts for run.toml: driver, device, counters of errors and gaps."""
+        return {"driver": self.driver, "device": self.device,
+                "rate_hz": self.rate_hz, "channels": self.channels,
+                "channel_names": list(self.channel_names), "units": self.units}
+
+    def status(self) -> dict[str, Any]:
+        """Live counters for the read-out (overflows, CRC errors, state)."""
+        return {}
+
+    @staticmethod
+    def check_unknown(options: dict[str, Any], known) -> None:
+        """Refuse keys a driver does not know (one validation path, as pyserial does)."""
+        for key in options:
+            if key not in known:
+                raise SettingError(key, options[key],
+                                   "unknown option for this driver; known: "
+                                   + ", ".join(sorted(known)))
+
+
+def _entry_points():
+    return {ep.name: ep for ep in metadata.entry_points(group=ENTRY_POINT_GROUP)}
+
+
+# Fallback when the package runs from a source tree that was never installed:
+# the same names the built-ins register in pyproject.toml.
+_BUILTIN = {
+    "simulated": "livefilt.drivers.simulated:SimulatedSource",
+    "file": "livefilt.drivers.file:FileSource",
+    "soundcard": "livefilt.drivers.soundcard:SoundCardSource",
+    "serial": "livefilt.drivers.serialport:SerialSource",
+}
+
+
+def driver_names() -> list[str]:
+    """Names of every registered driver, built-ins first."""
+    names = list(_BUILTIN)
+    names += sorted(n for n in _entry_points() if n not in _BUILTIN)
+    return names
+
+
+def load_driver(name: str) -> type[Source]:
+    """Import and return the driver class registered as ``name``.
+
+    Raises SettingError (field ``source.driver``) naming the known drivers
+    when ``name`` is unknown.
+    """
+    eps = _entry_points()
+    if name in eps:
+        cls = eps[name].load()
+    elif name in _BUILTIN:
+        module, _, attr = _BUILTIN[name].partition(":")
+        import importlib
+        cls = getattr(importlib.import_module(module), attr)
+    else:
+        raise SettingError("source.driver", name,
+                           "unknown driver; known: " + ", ".join(driver_names()))
+    if not (isinstance(cls, type) and issubclass(cls, Source)):
+        raise SourceUnavailable(f"driver {name!r} does not provide a livefilt Source class")
+    return cls
