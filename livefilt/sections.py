@@ -1,0 +1,129 @@
+"""Stateful cascade of second-order sections, run block by block.
+
+:class:`SosFilter` keeps the filter state between blocks in exactly scipy's
+``zi`` layout, so filtering a stream in blocks gives the same samples as
+:func:`scipy.signal.sosfilt` on the whole array.
+
+The arrays ``.sos`` and ``.zi`` are allocated once and updated in place (a
+compiled kernel may hold them); they are replaced only when :meth:`retune`
+changes the number of sections.  One thread at a time: the engine calls
+:meth:`process` and, between blocks, :meth:`retune`.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+from scipy import signal
+
+__all__ = ["SosFilter"]
+
+log = logging.getLogger(__name__)
+
+
+class SosFilter:
+    """Cascade of second-order sections with state kept between blocks.
+
+    Parameters
+    ----------
+    sos : array_like, shape (n_sections, 6)
+        Sections in scipy layout ``[b0, b1, b2, 1, a1, a2]``.
+
+    Attributes
+    ----------
+    sos : ndarray, shape (n_sections, 6), float64, C-contiguous
+    zi : ndarray, shape (n_sections, 2), float64, C-contiguous
+        State in the layout of :func:`scipy.signal.sosfilt`'s ``zi``
+        (transposed direct form II), updated in place.
+    """
+
+    def __init__(self, sos: np.ndarray):
+        self.sos = _as_sos(sos)
+        self.zi = np.zeros((self.sos.shape[0], 2))
+        self._last = 0.0  # last input sample seen, for retune
+
+    @property
+    def sections(self) -> int:
+        """Number of second-order sections."""
+        return self.sos.shape[0]
+
+    def process(self, x: np.ndarray, out: np.ndarray | None = None) -> np.ndarray:
+        """Filter one block, continuing from the current state.
+
+        Parameters
+        ----------
+        x : ndarray, 1-D
+            Input samples (converted to float64); may be empty.
+        out : ndarray, 1-D float64, optional
+            Preallocated output of at least ``len(x)`` samples; the filtered
+            block is written to ``out[:len(x)]`` and that view is returned.
+
+        Returns
+        -------
+        y : ndarray, float64, same length as ``x``
+        """
+        x = np.asarray(x, dtype=np.float64)
+        if x.ndim != 1:
+            raise ValueError(f"process takes a 1-D block, got shape {x.shape}")
+        n = x.shape[0]
+        if out is not None and (out.ndim != 1 or out.shape[0] < n or out.dtype != np.float64):
+            raise ValueError("out must be a 1-D float64 array at least as long as the block")
+        if n == 0:
+            return out[:0] if out is not None else np.empty(0)
+        y, zf = signal.sosfilt(self.sos, x, zi=self.zi)
+        self.zi[...] = zf
+        self._last = float(x[-1])
+        if out is None:
+            return y
+        out[:n] = y
+        return out[:n]
+
+    def reset(self) -> None:
+        """Zero the state (as if the input had always been 0)."""
+        self.zi.fill(0.0)
+        self._last = 0.0
+
+    def settle(self, level: float) -> None:
+        """Set the state to the steady state for a constant input ``level``.
+
+        Uses :func:`scipy.signal.sosfilt_zi`, so a constant input ``level``
+        then gives a constant output ``level`` times the DC gain.
+        """
+        self.zi[...] = signal.sosfilt_zi(self.sos) * float(level)
+        self._last = float(level)
+
+    def retune(self, new_sos: np.ndarray) -> None:
+        """Change the coefficients at a block boundary without a large transient.
+
+        The new state is the new filter's steady state for a constant input
+        equal to the last sample seen, so the output continues from about
+        where the input is, and the transient is no larger than the new
+        filter's own step response.  The arrays are kept when the number of
+        sections does not change, and reallocated when it does.
+        """
+        new = _as_sos(new_sos)
+        if new.shape == self.sos.shape:
+            self.sos[...] = new
+        else:
+            log.debug("retune: %d -> %d sections, state arrays reallocated",
+                      self.sections, new.shape[0])
+            self.sos = new
+            self.zi = np.zeros((new.shape[0], 2))
+        self.settle(self._last)
+
+    def step_response(self, n: int) -> np.ndarray:
+        """The first ``n`` samples of the unit-step response from zero state.
+
+        The running state is not touched.
+        """
+        return signal.sosfilt(self.sos, np.ones(int(n)))
+
+
+def _as_sos(sos: np.ndarray) -> np.ndarray:
+    sos = np.array(sos, dtype=np.float64, order="C", ndmin=2)  # always a copy
+    if sos.ndim != 2 or sos.shape[1] != 6 or sos.shape[0] < 1:
+        raise ValueError(f"sos must have shape (n_sections, 6), got {sos.shape}")
+    if not np.all(sos[:, 3] == 1.0):
+        raise ValueError("sos rows must be normalised with a0 = 1 (scipy layout)")
+    return sos
