@@ -520,7 +520,7 @@ def _below_nyquist(value: Any, field: str, nyq: float) -> float:
         raise SettingError(field, value, "required; " + allowed)
     v = _real(value, field, allowed)
     if not 0.0 < v < nyq:
-        raise SettingError(field, value, allowed)
+        raise SettingError(field, _tidy(value), allowed)
     return v
 
 
