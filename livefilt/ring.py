@@ -146,6 +146,11 @@ class Ring:
 
     # -- consumer side -------------------------------------------------
     @property
+    def free(self) -> int:
+        """Frames that can be written now without a loss (producer side)."""
+        return self.capacity - (self._w - self._r)
+
+    @property
     def available(self) -> int:
         """Frames written and not yet read."""
         return self._w - self._r

@@ -16,6 +16,7 @@ calls ``ring.close()``.
 Lifecycle::
 
     src = load_driver("simulated").from_settings(options, rate_hz=48000, block=256)
+    src.open()             # opens the device; may learn rate_hz / channels from it
     ring = Ring(src.channels, capacity)
     src.start(ring)        # returns at once; samples flow
     ...
@@ -106,6 +107,12 @@ class Source:
         return []
 
     # -- running -------------------------------------------------------
+    def open(self) -> None:
+        """Open the device.  After this, ``rate_hz``, ``channels``,
+        ``channel_names``, ``units`` and ``device`` are final (a device that
+        describes itself, such as the serial firmware, sets them here).
+        Raises :class:`~livefilt.errors.SourceError` with a one-line reason."""
+
     def start(self, ring) -> None:
         """Begin writing frames into ``ring``; return at once."""
         raise NotImplementedError

@@ -1,0 +1,141 @@
+"""Replay a recording: WAV files (int16, int24, int32, float32/64; any rate and
+channel count; RF64) or a livefilt run folder (its raw.wav, with the channel
+names, units and reference of the original run).
+
+Options (``[source]`` table, or ``livefilt run --input PATH [--fast]``)
+-----------------------------------------------------------------------
+path : str
+    A .wav file or a run folder.
+pace : "realtime" | "fast", default "realtime"
+    Paced by the wall clock like a live device, or as fast as the engine reads.
+loop : bool, default false
+    Start again at the end (a gap is marked at each restart).
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+import tomllib
+from pathlib import Path
+
+from livefilt.errors import RecordingError, SettingError, SourceError
+from livefilt.source import Source
+from livefilt.wavio import WavReader
+
+__all__ = ["FileSource"]
+
+_PIECE = 4096
+
+
+class FileSource(Source):
+    """Replays a WAV file or a run folder into the ring."""
+
+    driver = "file"
+    options = {
+        "path": "a .wav file or a livefilt run folder",
+        "pace": '"realtime" (default) or "fast"',
+        "loop": "start again at the end (default false)",
+    }
+
+    def __init__(self, path: str, pace: str = "realtime", loop: bool = False, block: int = 256):
+        self.path = Path(path)
+        self.realtime = pace == "realtime"
+        self.loop = loop
+        self._block = block
+        self._reader: WavReader | None = None
+        self._thread = None
+        self._stop = threading.Event()
+        self.units = "FS"
+
+    @classmethod
+    def from_settings(cls, options, rate_hz, block):
+        cls.check_unknown(options, cls.options)
+        path = options.get("path")
+        if not isinstance(path, str) or not path:
+            raise SettingError("source.path", path, "must name a .wav file or a run folder")
+        pace = options.get("pace", "realtime")
+        if pace not in ("realtime", "fast"):
+            raise SettingError("source.pace", pace, 'must be "realtime" or "fast"')
+        loop = options.get("loop", False)
+        if not isinstance(loop, bool):
+            raise SettingError("source.loop", loop, "must be true or false")
+        return cls(path, pace, loop, block)
+
+    def open(self) -> None:
+        p = self.path
+        wav = p
+        meta = {}
+        if p.is_dir():
+            wav = p / "raw.wav"
+            if (p / "run.toml").is_file():
+                try:
+                    meta = tomllib.loads((p / "run.toml").read_text(encoding="utf-8"))
+                except tomllib.TOMLDecodeError as e:
+                    raise SourceError(f"{p / 'run.toml'}: not valid TOML: {e}") from None
+        elif not p.exists():
+            raise SourceError(f"{p}: no such file or folder")
+        try:
+            self._reader = WavReader(wav)
+        except RecordingError as e:
+            raise SourceError(str(e)) from None
+        r = self._reader
+        self.rate_hz, self.channels = r.rate_hz, r.channels
+        info = meta.get("source_info", {})
+        names = info.get("channel_names")
+        self.channel_names = list(names) if names and len(names) == r.channels \
+            else [f"in{i}" for i in range(r.channels)]
+        self.units = info.get("units", "FS")
+        ref = info.get("reference")
+        if isinstance(ref, dict) and "frequency_hz" in ref:
+            self.reference_hint = {"frequency_hz": ref["frequency_hz"],
+                                   "phase_deg": ref.get("phase_deg", 0.0)}
+        self.device = f"{p} ({r.sample_format}, {r.channels} ch, {r.rate_hz:g} Hz, {r.frames / r.rate_hz:.1f} s)"
+        self.frames_total = r.frames
+
+    def start(self, ring) -> None:
+        self._stop.clear()
+        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-file", daemon=True)
+        self._thread.start()
+
+    def _run(self, ring) -> None:
+        r = self._reader
+        piece = self._block if self.realtime else _PIECE
+        t0, sent = time.monotonic(), 0
+        while not self._stop.is_set():
+            if self.realtime:
+                wait = t0 + (sent + piece) / self.rate_hz - time.monotonic()
+                if wait > 0:
+                    self._stop.wait(min(wait, 0.05))
+                    continue
+            else:
+                while ring.free < piece and not self._stop.is_set():
+                    self._stop.wait(0.0005)
+            frames = r.read(piece)
+            if frames.shape[0] == 0:
+                if self.loop and r.frames:
+                    r.rewind()
+                    ring.mark_gap(0, note="file restarted (loop)")
+                    continue
+                break
+            ring.write(frames)
+            sent += frames.shape[0]
+        ring.close()
+
+    def stop(self) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=2)
+            self._thread = None
+        if self._reader is not None:
+            self._reader.close()
+            self._reader = None
+
+    def status(self):
+        r = self._reader
+        return {"position_s": (r.position / r.rate_hz) if r else 0.0}
+
+    def info(self):
+        d = super().info()
+        d["path"] = str(self.path)
+        return d

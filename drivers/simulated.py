@@ -1,0 +1,274 @@
+"""Simulated bench: a greenhouse canopy-height sensor, physically modelled.
+
+An infrared LED chopped 0/1 at ``led_hz`` lights the canopy; a silicon
+photodiode behind a lens collects the diffuse reflection; a transimpedance
+amplifier (TIA) turns photocurrent into volts; a 16-bit ADC digitises it.
+Channel 0 ("photodiode") is the ADC output in full-scale units (1.0 = 1 V,
+the ADC's positive limit); channel 1 ("led") is the LED drive (0 or 1), usable
+as a measured reference.  Deterministic for a given ``seed``: samples are made
+in fixed chunks of 4096 frames whatever block size the engine reads.
+
+Model (each term a documented physical law; constants are the scene's)
+--------------------------------------------------------------------
+- Reflected power, diffuse (Lambertian) target [REFERENCES row 9]:
+  beam-filling ``P_r = P_led rho A_r / (pi d^2)``; a target smaller than the
+  spot intercepts the fraction ``A_t / (pi (d tan(theta))^2)``, so ~1/d^4.
+- Photocurrent ``I = R_lambda P`` with R = 0.65 A/W at 940 nm (typical silicon,
+  below the ideal 0.758 A/W of row 7c).
+- Sunlight: DC photocurrent with slow cloud shadows (smoothed random walk).
+- Lamp flicker at twice the mains frequency; PWM grow lights as a 1 kHz
+  square wave (30 % duty, all its harmonics); mains hum coupled into the
+  amplifier at 50 Hz with odd harmonics; mains frequency wanders +-0.1 Hz
+  (row 8).
+- Shot noise sqrt(2 q I) of the total photocurrent (row 7b), thermal noise of
+  the feedback resistor sqrt(4 k T R) (row 7a), amplifier voltage noise; all
+  white, summed as one Gaussian of the summed variance.
+- ADC: 16 bits over +-1 V, clipping at the rails, rounding to the code.
+
+Options (``[source]`` table)
+----------------------------
+seed : int, default 7
+    Noise and cloud seed.
+pace : "realtime" | "fast", default "realtime"
+    "realtime" paces chunks by the wall clock; "fast" runs as fast as the
+    consumer reads (the ring never overruns: the producer waits).
+led_hz : float, default 1370
+    LED chopping frequency (put the same in ``[reference] frequency_hz``).
+mains_hz : 50 | 60, default 50
+target : "canopy" | "leaf", default "canopy"
+    "canopy" fills the beam (1/d^2); "leaf" is a 20 cm^2 target (1/d^4 far out).
+distance_m : float, optional
+    Hold the target at this distance instead of following the script.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+
+import numpy as np
+
+from livefilt.errors import SettingError
+from livefilt.source import DeviceInfo, Source
+
+__all__ = ["SimulatedSource", "Scene"]
+
+Q_E = 1.602176634e-19  # elementary charge, C (CODATA exact)
+K_B = 1.380649e-23  # Boltzmann constant, J/K (CODATA exact)
+CHUNK = 4096
+
+# distance script: (duration s, start m, end m); repeats
+_SCRIPT = (
+    (4.0, 0.4, 0.4), (12.0, 0.4, 2.0), (4.0, 2.0, 2.0), (10.0, 2.0, 4.0),
+    (4.0, 4.0, 4.0), (16.0, 4.0, 0.4),
+)
+
+
+class Scene:
+    """The physical scene; pure and vectorised (samples from sample indices)."""
+
+    p_led_w = 0.002          # LED optical power while on, W (940 nm)
+    rho = 0.45               # canopy reflectance at 940 nm
+    a_r_m2 = 7.5e-6          # bare photodiode area (7.5 mm^2), m^2
+    beam_half_angle = np.radians(8.0)
+    a_leaf_m2 = 20e-4        # small-target area, m^2
+    resp_a_w = 0.65          # photodiode responsivity, A/W
+    r_f = 20e3               # TIA feedback resistor, ohm
+    temp_k = 300.0
+    e_amp = 12e-9            # amplifier voltage noise, V/sqrt(Hz)
+    i_sun = 40e-6            # sunlight photocurrent under clear sky, A
+    i_lamp = 3e-6            # lamp photocurrent (mean), A
+    lamp_depth = 0.35        # flicker modulation depth at 2x mains
+    i_pwm = 5e-6             # PWM grow light photocurrent while on, A
+    pwm_hz, pwm_duty = 1000.0, 0.30
+    hum_v = (4e-3, 1.2e-3, 0.6e-3)  # 1st, 3rd, 5th mains harmonics at the TIA output, V
+    adc_bits, adc_fs_v = 16, 1.0
+
+    def __init__(self, fs: float, led_hz: float, mains_hz: float, target: str,
+                 distance_m: float | None, seed: int):
+        self.fs, self.led_hz, self.mains_hz = fs, led_hz, mains_hz
+        self.target, self.fixed_distance, self.seed = target, distance_m, seed
+        self._script_t = np.cumsum([0.0] + [s[0] for s in _SCRIPT])
+
+    def distance(self, t: np.ndarray | float) -> np.ndarray:
+        """Target distance in metres at time ``t`` (s)."""
+        if self.fixed_distance is not None:
+            return np.full(np.shape(t), self.fixed_distance)
+        tt = np.mod(t, self._script_t[-1])
+        starts = np.array([s[1] for s in _SCRIPT])
+        ends = np.array([s[2] for s in _SCRIPT])
+        k = np.clip(np.searchsorted(self._script_t, tt, side="right") - 1, 0, len(_SCRIPT) - 1)
+        frac = (tt - self._script_t[k]) / np.array([s[0] for s in _SCRIPT])[k]
+        return starts[k] + (ends[k] - starts[k]) * frac
+
+    def reflected_w(self, d: np.ndarray) -> np.ndarray:
+        """Received power with the LED on (Lambertian target, REFERENCES row 9)."""
+        p = self.p_led_w * self.rho * self.a_r_m2 / (np.pi * d * d)
+        if self.target == "leaf":
+            spot = np.pi * (d * np.tan(self.beam_half_angle)) ** 2
+            p = p * np.minimum(1.0, self.a_leaf_m2 / spot)
+        return p
+
+    def signal_rms_fs(self, d: float) -> float:
+        """Expected lock-in reading (rms of the fundamental, full-scale units)
+        at distance ``d``: a 0..A square has a 2A/pi peak fundamental (row 11)."""
+        a = self.resp_a_w * float(self.reflected_w(np.asarray(d))) * self.r_f / self.adc_fs_v
+        return 2 * a / np.pi / np.sqrt(2)
+
+    def noise_density_v(self, i_total: float) -> float:
+        """White-noise density at the TIA output, V/sqrt(Hz) (rows 7a, 7b)."""
+        shot = np.sqrt(2 * Q_E * i_total) * self.r_f
+        thermal = np.sqrt(4 * K_B * self.temp_k * self.r_f)
+        return float(np.sqrt(shot ** 2 + thermal ** 2 + self.e_amp ** 2))
+
+
+class SimulatedSource(Source):
+    """The built-in simulated bench (see module docstring)."""
+
+    driver = "simulated"
+    options = {
+        "seed": "noise and cloud seed (int, default 7)",
+        "pace": '"realtime" (default) or "fast" (as fast as the engine reads)',
+        "led_hz": "LED chopping frequency in Hz (default 1370)",
+        "mains_hz": "50 or 60 (default 50)",
+        "target": '"canopy" (beam-filling, 1/d^2) or "leaf" (small, 1/d^4 far out)',
+        "distance_m": "hold the target at this distance instead of the script",
+    }
+
+    def __init__(self, rate_hz: float, seed: int = 7, pace: str = "realtime",
+                 led_hz: float = 1370.0, mains_hz: float = 50.0, target: str = "canopy",
+                 distance_m: float | None = None):
+        self.rate_hz = float(rate_hz)
+        self.channels = 2
+        self.channel_names = ["photodiode", "led"]
+        self.units = "FS"
+        self.realtime = pace == "realtime"
+        self.scene = Scene(self.rate_hz, led_hz, mains_hz, target, distance_m, seed)
+        self.device = (f"greenhouse bench (simulated, seed {seed}, LED {led_hz:g} Hz, "
+                       f"mains {mains_hz:g} Hz, {target})")
+        self.reference_hint = {"frequency_hz": led_hz, "phase_deg": 0.0}
+        self._seed = seed
+        self._thread: threading.Thread | None = None
+        self._stop = threading.Event()
+        self._index = 0  # next frame index handed to the ring (producer thread)
+        self._block = 256  # paced hand-over size, a divisor of CHUNK
+
+    @classmethod
+    def from_settings(cls, options, rate_hz, block):
+        cls.check_unknown(options, cls.options)
+        seed = options.get("seed", 7)
+        if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+            raise SettingError("source.seed", seed, "must be a whole number >= 0")
+        pace = options.get("pace", "realtime")
+        if pace not in ("realtime", "fast"):
+            raise SettingError("source.pace", pace, 'must be "realtime" or "fast"')
+        led = options.get("led_hz", 1370.0)
+        if isinstance(led, bool) or not isinstance(led, (int, float)) or not 0 < led < rate_hz / 4:
+            raise SettingError("source.led_hz", led,
+                               f"must be a frequency between 0 and a quarter of the rate ({rate_hz / 4:g} Hz)")
+        mains = options.get("mains_hz", 50.0)
+        if mains not in (50, 60):
+            raise SettingError("source.mains_hz", mains, "must be 50 or 60")
+        target = options.get("target", "canopy")
+        if target not in ("canopy", "leaf"):
+            raise SettingError("source.target", target, 'must be "canopy" or "leaf"')
+        dist = options.get("distance_m")
+        if dist is not None and (isinstance(dist, bool) or not isinstance(dist, (int, float))
+                                 or not 0.05 <= dist <= 100):
+            raise SettingError("source.distance_m", dist, "must be a distance from 0.05 to 100 m")
+        src = cls(rate_hz, seed, pace, float(led), float(mains), target,
+                  None if dist is None else float(dist))
+        src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
+        return src
+
+    @classmethod
+    def probe(cls):
+        return [DeviceInfo(name="greenhouse bench", channels=2,
+                           note="built-in simulated source, always available")]
+
+    # -- generation ----------------------------------------------------
+    def generate(self, start: int, n: int) -> np.ndarray:
+        """Frames ``start .. start+n-1`` as float32 (n, 2); chunk-aligned calls
+        are deterministic for the seed."""
+        sc, fs = self.scene, self.rate_hz
+        k = np.arange(start, start + n, dtype=np.int64)
+        t = k / fs
+        chunk_id = start // CHUNK
+        rng = np.random.default_rng([self._seed, chunk_id, start % CHUNK])
+        led = ((k * sc.led_hz) % fs) < 0.5 * fs  # exact 50 % duty from integer arithmetic
+        led = led.astype(np.float64)
+        d = sc.distance(t)
+        i_sig = sc.resp_a_w * sc.reflected_w(d) * led
+        # clouds: smooth, slow, deterministic in t (sum of slow sines with seeded phases)
+        cr = np.random.default_rng([self._seed, 99])
+        ph = cr.uniform(0, 2 * np.pi, 3)
+        shade = 0.5 + 0.5 * np.sin(2 * np.pi * 0.013 * t + ph[0]) * np.sin(2 * np.pi * 0.031 * t + ph[1])
+        cloud = 1.0 - 0.55 * np.clip(shade + 0.15 * np.sin(2 * np.pi * 0.11 * t + ph[2]), 0, 1) ** 3
+        mains_f = sc.mains_hz + 0.1 * np.sin(2 * np.pi * 0.02 * t + ph[0])
+        mains_phase = 2 * np.pi * (sc.mains_hz * t - 0.1 / (2 * np.pi * 0.02)
+                                   * (np.cos(2 * np.pi * 0.02 * t + ph[0]) - np.cos(ph[0])))
+        del mains_f
+        i_sun = sc.i_sun * cloud
+        i_lamp = sc.i_lamp * (1 + sc.lamp_depth * np.cos(2 * mains_phase))
+        pwm = ((k * sc.pwm_hz) % fs) < sc.pwm_duty * fs
+        i_pwm = sc.i_pwm * pwm
+        i_total = i_sig + i_sun + i_lamp + i_pwm
+        v = sc.r_f * i_total
+        v += (sc.hum_v[0] * np.sin(mains_phase) + sc.hum_v[1] * np.sin(3 * mains_phase)
+              + sc.hum_v[2] * np.sin(5 * mains_phase))
+        density = sc.noise_density_v(float(i_total.mean()))
+        v += rng.standard_normal(n) * density * np.sqrt(fs / 2)
+        q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
+        code = np.clip(np.round(v / q), -2 ** (sc.adc_bits - 1), 2 ** (sc.adc_bits - 1) - 1)
+        out = np.empty((n, 2), dtype=np.float32)
+        out[:, 0] = code * q / sc.adc_fs_v
+        out[:, 1] = led
+        return out
+
+    def distance_now(self) -> float:
+        return float(self.scene.distance(self._index / self.rate_hz))
+
+    # -- running -------------------------------------------------------
+    def start(self, ring) -> None:
+        self._stop.clear()
+        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-sim",
+                                        daemon=True)
+        self._thread.start()
+
+    def _run(self, ring) -> None:
+        # Samples are made in fixed 4096-frame chunks (determinism) and handed
+        # over in engine-block pieces when paced, so latency stays one block.
+        t0 = time.monotonic()
+        piece = self._block if self.realtime else CHUNK
+        chunk, pos = self.generate(self._index, CHUNK), 0
+        while not self._stop.is_set():
+            if self.realtime:
+                wait = t0 + (self._index + piece) / self.rate_hz - time.monotonic()
+                if wait > 0:
+                    self._stop.wait(min(wait, 0.05))
+                    continue
+            else:
+                while ring.free < piece and not self._stop.is_set():
+                    self._stop.wait(0.0005)
+                if self._stop.is_set():
+                    break
+            ring.write(chunk[pos:pos + piece])
+            pos += piece
+            self._index += piece
+            if pos >= CHUNK:
+                chunk, pos = self.generate(self._index, CHUNK), 0
+
+    def stop(self) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=2)
+            self._thread = None
+
+    def status(self):
+        return {"distance_m": self.distance_now()}
+
+    def info(self):
+        d = super().info()
+        d["seed"] = self._seed
+        d["scene"] = "greenhouse canopy-height sensor"
+        return d

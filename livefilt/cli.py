@@ -1,0 +1,192 @@
+"""Command line: ``livefilt live | run | sources | speed``.
+
+Every user mistake ends in one line on stderr (``livefilt: <what>``) and exit
+status 2; Ctrl-C ends a run cleanly with its files closed.  Only this module
+configures logging.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import sys
+import time
+
+from . import __version__
+from .errors import LivefiltError
+
+__all__ = ["main"]
+
+log = logging.getLogger("livefilt")
+
+CAUTION = ("Safety: an infrared LED or laser can harm eyes without a visible warning; follow the "
+           "laser-safety class of your source and local rules. Mains-powered lamps and supplies "
+           "are dangerous: leave mains wiring to licensed practice and local codes.")
+
+
+def _settings(args):
+    from .config import demo_config, load_config, parse_config
+    s = load_config(args.config) if getattr(args, "config", None) else demo_config()
+    if getattr(args, "input", None):
+        doc = s.to_mapping()
+        doc["source"] = {"driver": "file", "rate_hz": s.source.rate_hz, "block": s.source.block,
+                         "path": args.input, "pace": "fast" if args.fast else "realtime"}
+        s = parse_config(doc, s.origin)
+    elif getattr(args, "fast", False):
+        if "pace" in _pace_drivers(s.source.driver):
+            doc = s.to_mapping()
+            doc["source"]["pace"] = "fast"
+            s = parse_config(doc, s.origin)
+    return s
+
+
+def _pace_drivers(driver: str) -> set:
+    from .source import load_driver
+    return set(load_driver(driver).options)
+
+
+def cmd_run(args) -> int:
+    from .engine import Engine
+    from .readout import Readout
+
+    settings = _settings(args)
+    engine = Engine(settings)
+    if args.out:
+        rec = engine.start_recording(args.out)
+        print(f"recording to {rec.folder}", file=sys.stderr)
+    readout = Readout(engine)
+    period = 0.25 if readout.tty else 1.0
+    engine.start(args.duration)
+    try:
+        while not engine.finished.wait(period):
+            readout.draw()
+        readout.draw()
+    except KeyboardInterrupt:
+        print("\nstopping…", file=sys.stderr)
+    finally:
+        engine.stop()
+    if engine.error is not None:
+        if isinstance(engine.error, LivefiltError):
+            raise engine.error
+        raise engine.error
+    if args.out and engine.stats.frames:
+        print(f"saved {engine.stats.frames} frames ({engine.stats.frames / engine.rate_hz:.2f} s) "
+              f"to {args.out}", file=sys.stderr)
+    return 0
+
+
+def _has_display() -> bool:
+    if os.environ.get("QT_QPA_PLATFORM", "").startswith(("offscreen", "minimal")):
+        return True
+    if sys.platform.startswith("linux"):
+        return bool(os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"))
+    return True
+
+
+def cmd_live(args) -> int:
+    if not _has_display() and not args.screenshot:
+        print("livefilt: no display found (DISPLAY/WAYLAND_DISPLAY unset): showing the terminal "
+              "read-out instead", file=sys.stderr)
+        return cmd_run(args)
+    if args.screenshot and not _has_display():
+        os.environ["QT_QPA_PLATFORM"] = "offscreen"
+    try:
+        from .window import run_window
+    except ImportError as e:
+        print(f"livefilt: the window needs pyqtgraph and PySide6 ({e.name or e} missing: "
+              "pip install 'livefilt[window]'): showing the terminal read-out instead", file=sys.stderr)
+        return cmd_run(args)
+    print(CAUTION, file=sys.stderr)
+    return run_window(_settings(args), duration_s=args.duration, screenshot=args.screenshot,
+                      out=args.out)
+
+
+def cmd_sources(args) -> int:
+    from .source import driver_names, load_driver
+    for name in driver_names():
+        try:
+            cls = load_driver(name)
+            devices = cls.probe()
+        except LivefiltError as e:
+            print(f"{name}: unavailable: {e}")
+            continue
+        except Exception as e:  # a third party's plug-in failing must not hide the others
+            print(f"{name}: unavailable: {type(e).__name__}: {e}")
+            continue
+        print(f"{name}: {len(devices)} device(s)")
+        for d in devices:
+            extra = ", ".join(f"{k} {v}" for k, v in d.items() if k != "name")
+            print(f"  {d.get('name', '?')}" + (f"  ({extra})" if extra else ""))
+        if args.verbose and cls.options:
+            for k, v in cls.options.items():
+                print(f"    option {k}: {v}")
+    return 0
+
+
+def cmd_speed(args) -> int:
+    from .speed import run_speed
+    return run_speed(args)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="livefilt", description=(
+        "Live acquisition and causal filtering for modulated-light sensors. "
+        "With no command: the live window on the built-in greenhouse demo."))
+    p.add_argument("--version", action="version", version=f"livefilt {__version__}")
+    p.add_argument("-v", "--verbose", action="store_true", help="more log messages")
+    sub = p.add_subparsers(dest="command")
+
+    def common(sp):
+        sp.add_argument("--config", metavar="FILE", help="TOML settings (default: the built-in demo scene)")
+        sp.add_argument("--input", metavar="FILE.wav", help="replay a WAV file or a run folder")
+        sp.add_argument("--fast", action="store_true", help="replay/simulate as fast as possible")
+        sp.add_argument("--duration", type=_seconds, metavar="S", help="stop after S seconds of data")
+        sp.add_argument("--out", metavar="DIR", help="record the run into a new folder under DIR")
+
+    r = sub.add_parser("run", help="headless processing with a terminal read-out")
+    common(r)
+    r.set_defaults(func=cmd_run)
+    lv = sub.add_parser("live", help="the live window")
+    common(lv)
+    lv.add_argument("--screenshot", metavar="FILE.png", help="save a PNG of the window before closing")
+    lv.set_defaults(func=cmd_live)
+    s = sub.add_parser("sources", help="list drivers and the devices each can see")
+    s.add_argument("-v", "--verbose", action="store_true", help="also list each driver's options")
+    s.set_defaults(func=cmd_sources)
+    sp = sub.add_parser("speed", help="measure throughput and real-time factor on this machine")
+    sp.add_argument("--config", metavar="FILE", help="measure this config's chains")
+    sp.add_argument("--json", metavar="FILE", help="also write the table as JSON")
+    sp.add_argument("--quick", action="store_true", help="shorter measurements (noisier)")
+    sp.set_defaults(func=cmd_speed)
+    return p
+
+
+def _seconds(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not v > 0:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be more than 0 seconds")
+    return v
+
+
+def main(argv=None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
+                        format="livefilt: %(message)s")
+    if args.command is None:
+        args = parser.parse_args(["live"] + (argv or sys.argv[1:]))
+    try:
+        return args.func(args)
+    except LivefiltError as e:
+        print(f"livefilt: {e}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,267 @@
+"""Settings: TOML (stdlib ``tomllib``) into typed, validated settings.
+
+One validation path: every value is checked where its meaning lives
+(:class:`~livefilt.design.StageSpec`, :class:`~livefilt.detect.DetectorSpec`,
+:class:`~livefilt.detect.ReferenceSpec`, the driver's ``from_settings``) and
+errors are re-raised here with the full field path, e.g.
+``chains[0].stages[2].cutoff_hz = 30000: must be between 0 and Nyquist
+(24000 Hz), exclusive``.
+
+API
+---
+- :func:`load_config` (path) and :func:`parse_config` (dict) -> :class:`Settings`
+- :func:`demo_config` the built-in greenhouse scene (``livefilt/scenes/demo.toml``)
+- :meth:`Settings.to_toml` text the loader reads back to equal settings
+- :meth:`Settings.at_rate` the same settings re-validated at another sample rate
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass, field, replace
+from importlib import resources
+from pathlib import Path
+from typing import Any, Mapping
+
+from .design import StageSpec
+from .detect import DetectorSpec, ReferenceSpec
+from .errors import SettingError
+from .tomlout import dumps
+
+__all__ = ["Settings", "SourceSettings", "ChainSettings", "OutputSettings",
+           "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS"]
+
+#: Upper bound used for channel checks before the source is open; the engine
+#: re-checks against the real channel count.
+MAX_CHANNELS = 64
+
+_TOP = {"source", "reference", "chains", "output"}
+_SOURCE_COMMON = {"driver", "rate_hz", "block"}
+_CHAIN = {"name", "input", "stages", "detector"}
+_OUTPUT = {"interval_s"}
+
+
+@dataclass(frozen=True)
+class SourceSettings:
+    """The ``[source]`` table: driver name, rate, block, and the driver's own keys."""
+
+    driver: str = "simulated"
+    rate_hz: float = 48000.0
+    block: int = 256
+    options: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_mapping(self) -> dict:
+        d = {"driver": self.driver, "rate_hz": _num(self.rate_hz), "block": self.block}
+        d.update(self.options)
+        return d
+
+
+@dataclass(frozen=True)
+class ChainSettings:
+    """One ``[[chains]]`` entry: stages then a detector, fed from one input channel."""
+
+    name: str
+    input: int | str
+    stages: tuple[StageSpec, ...]
+    detector: DetectorSpec
+
+    def to_mapping(self) -> dict:
+        return {"name": self.name, "input": self.input,
+                "stages": [s.to_mapping() for s in self.stages],
+                "detector": self.detector.to_mapping()}
+
+
+@dataclass(frozen=True)
+class OutputSettings:
+    """The ``[output]`` table: read-out and results interval."""
+
+    interval_s: float = 0.05
+
+    def to_mapping(self) -> dict:
+        return {"interval_s": _num(self.interval_s)}
+
+
+@dataclass(frozen=True)
+class Settings:
+    """A whole, validated configuration."""
+
+    source: SourceSettings
+    reference: ReferenceSpec | None
+    chains: tuple[ChainSettings, ...]
+    output: OutputSettings
+    origin: str = "<built-in demo>"
+
+    def to_mapping(self) -> dict:
+        d: dict[str, Any] = {"source": self.source.to_mapping()}
+        if self.reference is not None:
+            d["reference"] = self.reference.to_mapping()
+        d["chains"] = [c.to_mapping() for c in self.chains]
+        d["output"] = self.output.to_mapping()
+        return d
+
+    def to_toml(self, header: str = "") -> str:
+        """TOML text that :func:`parse_config` reads back to equal settings."""
+        return dumps(self.to_mapping(), header=header)
+
+    def at_rate(self, rate_hz: float, channels: int = MAX_CHANNELS) -> "Settings":
+        """Re-validate every rate-dependent value at ``rate_hz`` (a source that
+        dictates its own rate, such as a file or the serial firmware)."""
+        doc = self.to_mapping()
+        doc["source"]["rate_hz"] = rate_hz
+        return parse_config(doc, self.origin, channels=channels)
+
+    def with_chain(self, index: int, chain: ChainSettings) -> "Settings":
+        chains = list(self.chains)
+        chains[index] = chain
+        return replace(self, chains=tuple(chains))
+
+
+def _num(x: float) -> float | int:
+    return int(x) if float(x).is_integer() else float(x)
+
+
+def _table(doc: Mapping, key: str, path: str) -> Mapping:
+    v = doc.get(key, {})
+    if not isinstance(v, Mapping):
+        raise SettingError(path, v, "must be a table")
+    return v
+
+
+def _unknown(table: Mapping, known: set, path: str) -> None:
+    for k in table:
+        if k not in known:
+            raise SettingError(f"{path}.{k}" if path else k, table[k],
+                               "unknown key; allowed: " + ", ".join(sorted(known)))
+
+
+def _positive_number(v: Any, path: str, what: str) -> float:
+    if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+        raise SettingError(path, v, f"must be a positive number ({what})")
+    return float(v)
+
+
+def parse_source(table: Mapping) -> SourceSettings:
+    """Validate the common keys of ``[source]``; the driver checks the rest."""
+    from .source import driver_names
+
+    driver = table.get("driver", "simulated")
+    if driver not in driver_names():
+        raise SettingError("source.driver", driver,
+                           "unknown driver; known: " + ", ".join(driver_names()))
+    rate = _positive_number(table.get("rate_hz", 48000), "source.rate_hz", "samples per second")
+    if not 100 <= rate <= 1_000_000:
+        raise SettingError("source.rate_hz", table.get("rate_hz"), "must be between 100 and 1000000 Hz")
+    block = table.get("block", 256)
+    if isinstance(block, bool) or not isinstance(block, int) or not 16 <= block <= 65536:
+        raise SettingError("source.block", block, "must be a whole number of frames from 16 to 65536")
+    options = {k: v for k, v in table.items() if k not in _SOURCE_COMMON}
+    return SourceSettings(driver, rate, block, options)
+
+
+def parse_chain(table: Mapping, fs: float, index: int = 0, channels: int = MAX_CHANNELS) -> ChainSettings:
+    """Validate one chain table; errors name ``chains[index].…``."""
+    path = f"chains[{index}]"
+    if not isinstance(table, Mapping):
+        raise SettingError(path, table, "must be a table")
+    _unknown(table, _CHAIN, path)
+    name = table.get("name", "AB"[index] if index < 2 else f"C{index}")
+    if not isinstance(name, str) or not name.strip() or len(name) > 24:
+        raise SettingError(f"{path}.name", name, "must be a short non-empty text (at most 24 characters)")
+    inp = table.get("input", 0)
+    if isinstance(inp, bool) or not isinstance(inp, (int, str)):
+        raise SettingError(f"{path}.input", inp, "must be a channel number or a channel name")
+    if isinstance(inp, int) and not 0 <= inp < channels:
+        raise SettingError(f"{path}.input", inp, f"must be a channel from 0 to {channels - 1}")
+    raw_stages = table.get("stages", [])
+    if not isinstance(raw_stages, list):
+        raise SettingError(f"{path}.stages", raw_stages, "must be a list of stage tables")
+    stages = []
+    for j, st in enumerate(raw_stages):
+        where = f"{path}.stages[{j}]"
+        if not isinstance(st, Mapping):
+            raise SettingError(where, st, "must be a table such as { type = \"lowpass\", cutoff_hz = 2000 }")
+        try:
+            stages.append(StageSpec.from_mapping(st, fs))
+        except SettingError as e:
+            raise e.within(where) from None
+    det = table.get("detector", {"type": "lockin", "time_constant_s": 0.05})
+    if not isinstance(det, Mapping):
+        raise SettingError(f"{path}.detector", det, "must be a table")
+    try:
+        detector = DetectorSpec.from_mapping(det, fs)
+    except SettingError as e:
+        raise e.within(f"{path}.detector") from None
+    return ChainSettings(name.strip(), inp, tuple(stages), detector)
+
+
+def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_CHANNELS) -> Settings:
+    """Validate a parsed TOML document into :class:`Settings`.
+
+    Raises
+    ------
+    SettingError
+        The first invalid value, with its full field path.
+    """
+    _unknown(doc, _TOP, "")
+    source = parse_source(_table(doc, "source", "source"))
+    fs = source.rate_hz
+    ref_table = doc.get("reference")
+    reference = None
+    if ref_table is not None:
+        if not isinstance(ref_table, Mapping):
+            raise SettingError("reference", ref_table, "must be a table")
+        try:
+            reference = ReferenceSpec.from_mapping(ref_table, fs, channels)
+        except SettingError as e:
+            raise e.within("reference") from None
+    raw_chains = doc.get("chains", [])
+    if not isinstance(raw_chains, list) or not raw_chains:
+        raise SettingError("chains", raw_chains, "needs at least one [[chains]] table")
+    if len(raw_chains) > 8:
+        raise SettingError("chains", f"{len(raw_chains)} chains", "at most 8 chains")
+    chains = tuple(parse_chain(t, fs, i, channels) for i, t in enumerate(raw_chains))
+    names = [c.name for c in chains]
+    for i, n in enumerate(names):
+        if names.index(n) != i:
+            raise SettingError(f"chains[{i}].name", n, "must differ from the other chains' names")
+    for i, c in enumerate(chains):
+        if c.detector.type == "lockin" and reference is None and source.driver not in _SELF_REFERENCED:
+            raise SettingError(f"chains[{i}].detector.type", "lockin",
+                               "a lock-in needs a [reference] table with frequency_hz or channel")
+    out_t = _table(doc, "output", "output")
+    _unknown(out_t, _OUTPUT, "output")
+    interval = _positive_number(out_t.get("interval_s", 0.05), "output.interval_s", "seconds")
+    if interval * fs < 1 or interval > 60:
+        raise SettingError("output.interval_s", out_t.get("interval_s"),
+                           f"must be between one sample period ({1 / fs:.3g} s) and 60 s")
+    return Settings(source, reference, chains, OutputSettings(interval), origin)
+
+
+#: Drivers that announce their modulation frequency themselves (reference_hint),
+#: so a lock-in chain may go without a [reference] table.
+_SELF_REFERENCED = {"serial"}
+
+
+def load_config(path: str | Path) -> Settings:
+    """Read and validate a TOML config file.
+
+    Raises SettingError for a missing file or a TOML syntax error too, in one line.
+    """
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise SettingError("--config", str(path), "file not found") from None
+    except OSError as e:
+        raise SettingError("--config", str(path), f"cannot be read ({e.strerror})") from None
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise SettingError("--config", str(path), f"is not valid TOML: {e}") from None
+    return parse_config(doc, str(p))
+
+
+def demo_config() -> Settings:
+    """The built-in demo: a greenhouse canopy-height sensor on the simulated bench."""
+    text = resources.files("livefilt").joinpath("scenes/demo.toml").read_text(encoding="utf-8")
+    return parse_config(tomllib.loads(text), "<built-in demo>")

@@ -1,0 +1,323 @@
+"""The engine: source -> ring -> every chain on the same samples -> outputs.
+
+One engine serves the live window, the headless read-out and replay.  It
+owns the driver (through the :mod:`livefilt.source` contract), the
+:class:`~livefilt.ring.Ring`, the chains, a display :class:`~livefilt.taps.Tap`
+and, while recording, a :class:`~livefilt.record.RunWriter`.
+
+Threads: the driver produces into the ring; the engine thread
+(:meth:`Engine.start`, or :meth:`Engine.run` in the caller's thread) reads
+blocks, runs the chains and hands results to the outputs.  Viewers read the
+tap and :attr:`Engine.latest`; they change settings through
+:meth:`Engine.change_chain` (validated at once, applied at the next block
+boundary) and add markers with :meth:`Engine.add_marker`.
+
+When more than one block is waiting (replay as fast as possible, or after a
+hiccup) the engine takes up to ``batch`` blocks at once: the filters carry
+their state and the detector rows fall on fixed sample indices, so results
+are identical for any split (tested), and the per-call overhead is paid once.
+"""
+
+from __future__ import annotations
+
+import logging
+import threading
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .chain import Chain
+from .config import ChainSettings, Settings, parse_chain
+from .errors import RecordingError, SettingError, SourceError
+from .record import RunWriter, new_run_folder
+from .ring import Ring
+from .source import Source, load_driver
+from .taps import Tap
+
+__all__ = ["Engine", "EngineStats", "build_source"]
+
+log = logging.getLogger(__name__)
+
+
+def build_source(settings: Settings, **overrides) -> Source:
+    """Instantiate (not open) the driver named in ``settings.source``."""
+    s = settings.source
+    cls = load_driver(s.driver)
+    options = dict(s.options)
+    options.update(overrides)
+    try:
+        return cls.from_settings(options, s.rate_hz, s.block)
+    except SettingError as e:
+        raise (e if e.field.startswith("source") else e.within("source")) from None
+
+
+@dataclass
+class EngineStats:
+    """Counters for the status line, the read-out and run.toml."""
+
+    frames: int = 0                 # frames processed
+    index: int = 0                  # acquisition index reached (dropped frames included)
+    dropped: int = 0                # frames lost (ring overruns + device losses)
+    overruns: int = 0               # times the ring was full
+    device_events: int = 0          # driver flags with no frame count (overflow, underflow)
+    busy_s: float = 0.0             # processing time spent
+    started: float = field(default_factory=time.monotonic)
+    marks: list = field(default_factory=list)
+
+    def load(self, rate_hz: float) -> float:
+        """Processing time as a fraction of the acquired time (1.0 = 100 % of real time)."""
+        return self.busy_s / (self.frames / rate_hz) if self.frames else 0.0
+
+
+class Engine:
+    """Runs the chains of ``settings`` on a source.
+
+    Parameters
+    ----------
+    settings : Settings
+    source : Source, optional
+        An unopened source; built from ``settings.source`` when omitted.
+    batch : int
+        Most blocks processed in one go when several are waiting.
+    tap_seconds : float
+        History held for display (0 for none: headless).
+    """
+
+    def __init__(self, settings: Settings, source: Source | None = None, *,
+                 batch: int = 32, tap_seconds: float = 0.0):
+        self.source = source if source is not None else build_source(settings)
+        self.source.open()
+        src = self.source
+        self.rate_hz = float(src.rate_hz)
+        if abs(self.rate_hz - settings.source.rate_hz) > 1e-9:
+            log.info("source runs at %g Hz (config said %g Hz): settings re-checked at the source's rate",
+                     self.rate_hz, settings.source.rate_hz)
+        self.settings = settings.at_rate(self.rate_hz, channels=src.channels)
+        self.reference = self.settings.reference
+        if self.reference is None and src.reference_hint:
+            from .detect import ReferenceSpec
+            hint = {k: v for k, v in src.reference_hint.items() if k in ("frequency_hz", "phase_deg")}
+            self.reference = ReferenceSpec.from_mapping(hint, self.rate_hz, src.channels)
+        self.block = self.settings.source.block
+        self.batch = max(1, int(batch))
+        self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))
+        self.chains = [self._make_chain(c, i) for i, c in enumerate(self.settings.chains)]
+        self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
+        n_max = self.block * self.batch
+        self._x = np.zeros((len(self.chains), n_max))
+        self._y = np.zeros((len(self.chains), n_max))
+        self._streams = np.zeros((src.channels + len(self.chains), n_max), dtype=np.float32)
+        self.tap = None
+        if tap_seconds > 0:
+            self.tap = Tap(self.rate_hz, list(src.channel_names) + [c.name for c in self.chains],
+                           [c.name for c in self.chains], tap_seconds)
+        self.stats = EngineStats()
+        self.latest: dict[str, np.void] = {}
+        self.recorder: RunWriter | None = None
+        self.listeners: list = []  # callables (engine, start_index, raw, outputs, rows)
+        self._pending: list[tuple[int, ChainSettings]] = []
+        self._pending_lock = threading.Lock()
+        self._rec_lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._started = False
+        self._stop_at: int | None = None
+        self.error: BaseException | None = None
+        self.finished = threading.Event()
+
+    # -- construction helpers -------------------------------------------
+    def _channel_index(self, chain: ChainSettings, i: int) -> int:
+        names = list(self.source.channel_names)
+        inp = chain.input
+        if isinstance(inp, str):
+            if inp not in names:
+                raise SettingError(f"chains[{i}].input", inp,
+                                   "no such channel; this source has: " + ", ".join(names))
+            return names.index(inp)
+        if not 0 <= inp < self.source.channels:
+            raise SettingError(f"chains[{i}].input", inp,
+                               f"this source has channels 0 to {self.source.channels - 1} ({', '.join(names)})")
+        return inp
+
+    def _make_chain(self, c: ChainSettings, i: int) -> Chain:
+        return Chain(c, self.rate_hz, self.reference, self.output_every, self._channel_index(c, i))
+
+    # -- control (any thread) -------------------------------------------
+    def change_chain(self, index: int, table_or_settings) -> ChainSettings:
+        """Validate new settings for chain ``index`` now; apply them at the next block.
+
+        Accepts a ChainSettings or a chain table (dict); raises SettingError
+        with the same message the config loader gives.
+        """
+        if isinstance(table_or_settings, ChainSettings):
+            new = parse_chain(table_or_settings.to_mapping(), self.rate_hz, index, self.source.channels)
+        else:
+            new = parse_chain(table_or_settings, self.rate_hz, index, self.source.channels)
+        self._channel_index(new, index)
+        with self._pending_lock:
+            self._pending.append((index, new))
+        return new
+
+    def current_settings(self) -> Settings:
+        """The settings now in force (after applied changes), for saving."""
+        s = self.settings
+        for i, c in enumerate(self.chains):
+            s = s.with_chain(i, c.settings)
+        return s
+
+    def add_marker(self, distance_m: float | None, note: str = "") -> dict:
+        """Mark the current acquisition time with the target distance and a note."""
+        t = self.stats.index / self.rate_hz
+        m = {"time_s": round(t, 6)}
+        if distance_m is not None:
+            m["distance_m"] = float(distance_m)
+        if note:
+            m["note"] = note
+        with self._rec_lock:
+            if self.recorder is not None:
+                m = self.recorder.add_marker(t, distance_m, note)
+        self.stats.marks.append(m)
+        return m
+
+    def start_recording(self, parent="runs", folder=None) -> RunWriter:
+        """Begin writing a run folder (a new one under ``parent`` unless ``folder``)."""
+        with self._rec_lock:
+            if self.recorder is not None:
+                return self.recorder
+            path = folder if folder is not None else new_run_folder(parent)
+            info = self.source.info()
+            info["reference"] = self.reference.to_mapping() if self.reference else None
+            info["start_index"] = self.stats.index
+            self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
+                                      self.rate_hz, self.source.channels)
+            return self.recorder
+
+    def stop_recording(self) -> RunWriter | None:
+        with self._rec_lock:
+            rec, self.recorder = self.recorder, None
+        if rec is not None:
+            rec.close(self.counts())
+        return rec
+
+    def counts(self) -> dict:
+        st = self.stats
+        d = {"frames_processed": st.frames, "dropped_frames": st.dropped,
+             "ring_overruns": st.overruns, "device_events": st.device_events}
+        d.update({f"source_{k}": v for k, v in self.source.status().items()
+                  if isinstance(v, (int, float, str, bool))})
+        return d
+
+    # -- running ---------------------------------------------------------
+    def start(self, duration_s: float | None = None) -> None:
+        """Start the source and the engine thread; return at once."""
+        self._begin(duration_s)
+        self._thread = threading.Thread(target=self._loop, name="livefilt-engine", daemon=True)
+        self._thread.start()
+
+    def run(self, duration_s: float | None = None) -> None:
+        """Start the source and process in the calling thread until stopped,
+        the duration is reached, or the source ends."""
+        self._begin(duration_s)
+        self._loop()
+
+    def _begin(self, duration_s):
+        if self._started:
+            raise RuntimeError("an engine runs once")
+        self._started = True
+        if duration_s is not None:
+            self._stop_at = int(round(duration_s * self.rate_hz))
+        self.stats = EngineStats()
+        self.source.start(self.ring)
+
+    def stop(self, timeout: float = 5.0) -> None:
+        """Stop processing, stop the source, close a recording.  Idempotent."""
+        self._stop.set()
+        if self._thread is not None and self._thread is not threading.current_thread():
+            self._thread.join(timeout)
+        self._shutdown()
+
+    def wait(self, timeout: float | None = None) -> bool:
+        return self.finished.wait(timeout)
+
+    def _shutdown(self) -> None:
+        try:
+            self.source.stop()
+        finally:
+            self.stop_recording()
+
+    def _loop(self) -> None:
+        try:
+            while not self._stop.is_set():
+                if not self.step():
+                    if self.ring.closed or (self._stop_at is not None and self.stats.index >= self._stop_at):
+                        break
+        except BaseException as e:  # reported by the caller; the recording is closed below
+            self.error = e
+            log.debug("engine stopped on error", exc_info=True)
+        finally:
+            self._shutdown()
+            self.finished.set()
+
+    def step(self, timeout: float = 0.2) -> bool:
+        """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
+        want = self.block * self.batch
+        if self._stop_at is not None:
+            left = self._stop_at - self.stats.index
+            if left <= 0:
+                return False
+            want = min(want, left)
+        blk = self.ring.read(want, min_frames=min(self.block, want), timeout=timeout)
+        if blk is None:
+            return False
+        t0 = time.perf_counter()
+        if self._pending:
+            with self._pending_lock:
+                pending, self._pending = self._pending, []
+            for i, new in pending:
+                self.chains[i].retune(new)
+                self.chains[i].channel = self._channel_index(new, i)
+        st = self.stats
+        if blk.dropped or blk.gaps:
+            st.dropped += blk.dropped
+            st.overruns = self.ring.overruns
+            st.device_events = self.ring.device_events
+            for c in self.chains:
+                c.note_gap(blk.dropped)
+            for kind, lost, note in blk.gaps:
+                log.warning("%s: %d frames lost at sample %d (%s)", kind, lost, blk.start_index, note)
+        n, data, start = blk.frames, blk.data, blk.start_index
+        if self._stop_at is not None and start + n > self._stop_at:
+            n = max(0, self._stop_at - start)
+            data = data[:n]
+        nch = data.shape[1]
+        rows_all = []
+        for k, c in enumerate(self.chains):
+            x = self._x[k, :n]
+            x[:] = data[:, c.channel]
+            ref = data[:, c.ref_channel] if c.ref_channel is not None else None
+            y, rows = c.process(x, start, ref, out=self._y[k, :n])
+            rows_all.append(rows)
+            if len(rows):
+                self.latest[c.name] = rows[-1]
+        st.frames += n
+        st.index = start + n
+        if self.tap is not None:
+            s = self._streams[:, :n]
+            s[:nch] = data.T
+            s[nch:] = self._y[:, :n]
+            self.tap.write(start, s)
+            for c, rows in zip(self.chains, rows_all):
+                self.tap.add_rows(c.name, rows)
+        rec = self.recorder
+        if rec is not None:
+            with self._rec_lock:
+                if self.recorder is not None:
+                    rec.write_block(data)
+                    for c, rows in zip(self.chains, rows_all):
+                        if len(rows):
+                            rec.write_rows(c.name, rows)
+        for fn in self.listeners:
+            fn(self, start, data, self._y[:, :n], rows_all)
+        st.busy_s += time.perf_counter() - t0
+        return True

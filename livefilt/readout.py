@@ -1,0 +1,111 @@
+"""Terminal read-out of a running engine (headless ``livefilt run``).
+
+On a terminal it redraws a small table in place a few times a second; when
+output goes to a file or pipe it prints one plain line per chain each second.
+It only reads :attr:`Engine.latest`, :attr:`Engine.stats` and the source's
+status: it never touches the engine's data.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+
+__all__ = ["Readout", "si"]
+
+_PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
+
+
+def si(x: float, unit: str, digits: int = 4) -> str:
+    """``0.001234, "V"`` -> ``"1.234 mV"``; NaN -> ``"—"``."""
+    if x is None or not math.isfinite(x):
+        return "—"
+    if x == 0:
+        return f"0 {unit}"
+    a = abs(x)
+    scale, p = _PREFIX[0]
+    for s, pre in _PREFIX:
+        if a >= s * 0.9995:
+            scale, p = s, pre
+    return f"{x / scale:.{digits}g} {p}{unit}"
+
+
+def _db(x: float) -> str:
+    return "—" if x is None or not math.isfinite(x) else f"{x:6.1f} dB"
+
+
+def _clock(t: float) -> str:
+    m, s = divmod(max(t, 0.0), 60)
+    h, m = divmod(int(m), 60)
+    return f"{h:d}:{m:02d}:{s:04.1f}" if h else f"{m:02d}:{s:04.1f}"
+
+
+class Readout:
+    """Formats and prints the engine's state.
+
+    Parameters
+    ----------
+    engine : Engine
+    stream : file, default sys.stdout
+    """
+
+    def __init__(self, engine, stream=None):
+        self.engine = engine
+        self.stream = stream or sys.stdout
+        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self._drawn = 0
+
+    def lines(self) -> list[str]:
+        e = self.engine
+        st = e.stats
+        src = e.source
+        status = src.status()
+        units = src.units
+        t = st.index / e.rate_hz
+        head = [f"livefilt  {src.driver}: {src.device}",
+                f"{e.rate_hz:g} Hz, block {e.block}   elapsed {_clock(t)}"
+                + (f"   target {status['distance_m']:.2f} m" if "distance_m" in status else "")
+                + f"   dropped {st.dropped}   load {100 * st.load(e.rate_hz):.1f} %"]
+        rows = [f"{'chain':<6}{'amplitude (rms)':>17}{'phase':>10}{'noise':>15}{'SNR':>11}   lock"]
+        amps = {}
+        for c in e.chains:
+            r = e.latest.get(c.name)
+            if r is None:
+                rows.append(f"{c.name:<6}{'(settling)':>17}")
+                continue
+            amps[c.name] = float(r["amplitude"])
+            ph = float(r["phase_deg"])
+            rows.append(f"{c.name:<6}{si(float(r['amplitude']), units):>17}"
+                        f"{('—' if not math.isfinite(ph) else f'{ph:7.1f}°'):>10}"
+                        f"{si(float(r['noise']), units):>15}{_db(float(r['snr_db'])):>11}"
+                        f"   {'yes' if r['locked'] else 'NO'}")
+        names = [c.name for c in e.chains]
+        if len(names) >= 2 and all(n in amps for n in names[:2]) and amps[names[1]] > 0 and amps[names[0]] > 0:
+            rows.append(f"{names[0]} − {names[1]}: {20 * math.log10(amps[names[0]] / amps[names[1]]):+.2f} dB")
+        if e.recorder is not None:
+            rows.append(f"recording to {e.recorder.folder}  ({e.recorder.bytes_written / 1e6:.1f} MB)")
+        return head + rows
+
+    def draw(self) -> None:
+        lines = self.lines()
+        if self.tty:
+            out = ""
+            if self._drawn:
+                out += f"\x1b[{self._drawn}F"
+            out += "".join(f"\x1b[2K{ln}\n" for ln in lines)
+            self.stream.write(out)
+            self._drawn = len(lines)
+        else:
+            e = self.engine
+            t = e.stats.index / e.rate_hz
+            parts = []
+            for c in e.chains:
+                r = e.latest.get(c.name)
+                if r is not None:
+                    parts.append(f"{c.name} {si(float(r['amplitude']), e.source.units)} "
+                                 f"SNR {_db(float(r['snr_db'])).strip()}")
+            st = e.source.status()
+            dist = f"  d={st['distance_m']:.2f} m" if "distance_m" in st else ""
+            self.stream.write(f"t={t:7.2f} s{dist}  " + "  |  ".join(parts)
+                              + f"  dropped {e.stats.dropped}\n")
+        self.stream.flush()
