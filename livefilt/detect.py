@@ -486,7 +486,8 @@ class _RefTracker:
 
     State: ``mean_zi``, ``dev_zi`` (1,) lfilter states; ``high`` Schmitt
     state (None: unknown); ``last_np`` (index, d, d_next) of the last sample
-    at or below the mean; ``times``/``cycles`` arrays of recent crossings;
+    at or below the mean; ``t_ring``/``c_ring`` (fit_len,) times and cycle
+    numbers of the recent crossings (``n_cross`` so far, slot ``i % fit_len``);
     ``osc_index``, ``osc_phase`` (cycles), ``osc_step`` (cycles per sample)
     the oscillator segment in force; ``period`` fitted period in samples.
     """
@@ -504,6 +505,8 @@ class _RefTracker:
         # about half a second of crossings: averages the +-0.5 sample
         # quantisation of a hard-edged square's crossings
         self.fit_len = int(min(1024, max(16, 0.5 * (self.expected or 1000.0))))
+        self.t_ring = np.zeros(self.fit_len)
+        self.c_ring = np.zeros(self.fit_len)
         self.mean_zi = None
         self.dev_zi = np.zeros(1)
         self.osc_index = 0
@@ -516,12 +519,11 @@ class _RefTracker:
     def note_gap(self) -> None:
         self.high = None
         self.last_np = None
-        self.prev_d = None
         self._restart("samples lost, re-acquiring")
 
     def _restart(self, why: str) -> None:
-        self.times = []
-        self.cycles = []
+        self.n_cross = 0
+        self.cycle = 0
         self.period = None
         self.last_cross = None
         self._set_locked(False, why)
@@ -537,8 +539,10 @@ class _RefTracker:
     def process(self, ref: np.ndarray, start: int):
         """Return (oscillator phase in cycles, ref_hz, locked) per sample."""
         n = ref.shape[0]
-        if self.mean_zi is None:
-            self.mean_zi = np.array([self.mean_a * ref[0]]) if n else np.zeros(1)
+        if n == 0:
+            return np.empty(0), np.empty(0), np.empty(0, dtype=bool)
+        if self.mean_zi is None:  # the running mean starts at the first sample
+            self.mean_zi = np.array([self.mean_a * ref[0]])
         a = self.mean_a
         mean, self.mean_zi = lfilter([1 - a], [1, -a], ref, zi=self.mean_zi)
         d = ref - mean
@@ -610,40 +614,43 @@ class _RefTracker:
         if self.last_cross is not None and self.period is not None \
                 and t - self.last_cross > 3.0 * self.period:
             self._restart("crossings resumed after a pause")
-        if self.times:
+        if self.n_cross:
             step = 1 if self.period is None else max(1, round((t - self.last_cross) / self.period))
-            self.cycles.append(self.cycles[-1] + step)
-        else:
-            self.cycles.append(0)
-        self.times.append(t)
+            self.cycle += step
+        slot = self.n_cross % self.fit_len
+        self.t_ring[slot] = t
+        self.c_ring[slot] = self.cycle
+        self.n_cross += 1
         self.last_cross = t
-        if len(self.times) > self.fit_len:
-            del self.times[0], self.cycles[0]
-        if len(self.times) < 3:
+        m = min(self.n_cross, self.fit_len)
+        if m < 3:
             return
-        c = np.asarray(self.cycles, dtype=np.float64)
-        tt = np.asarray(self.times) - t
-        c -= c.mean()
-        t_mean = tt.mean()
-        period = float(np.dot(c, tt - t_mean) / np.dot(c, c))
+        # least squares, crossing time against cycle number, both taken
+        # relative to this crossing so that hours of samples cost no precision
+        tt = self.t_ring[:m] - t
+        c = self.c_ring[:m] - self.cycle
+        c_mean = c.sum() / m
+        c -= c_mean
+        t_mean = tt.sum() / m
+        tt -= t_mean
+        period = float(np.dot(c, tt) / np.dot(c, c))
         if not period > 2.0:
             self._restart("crossings faster than Nyquist")
             return
-        resid = tt - t_mean - period * c
-        rms = math.sqrt(float(np.mean(resid ** 2))) / period
+        tt -= period * c
+        rms = math.sqrt(float(np.dot(tt, tt)) / m) / period
         self.period = period
         freq = self.fs / period
         in_range = (self.expected is None and freq < self.fs / 2) or (
             self.expected is not None
             and abs(freq - self.expected) <= self.spec.lock_range * self.expected)
-        ok = len(self.times) >= self.min_cycles and rms < self.max_residual and in_range
-        # fitted model, in cycles: crossing i sits at cycles[i] - 1/4 (a rising
-        # crossing of cos(theta) is at theta = -90 deg)
+        ok = m >= self.min_cycles and rms < self.max_residual and in_range
+        # fitted model, in cycles: a crossing sits at its cycle number - 1/4 (a
+        # rising crossing of cos(theta) is at theta = -90 deg)
         origin = t + t_mean
-        c_bar = float(np.mean(self.cycles))
 
         def model(idx: float) -> float:
-            return (idx - origin) / period + c_bar - 0.25
+            return (idx - origin) / period + c_mean - 0.25
 
         cur = self.osc_phase + self.osc_step * (k - self.osc_index)
         if ok and not self.locked:
