@@ -468,7 +468,8 @@ class _RefTracker:
     Method
     ------
     - Running mean and mean absolute deviation of the channel: one-pole
-      low-passes (time constant ``mean_tau_s``).  A Schmitt trigger with
+      low-passes (time constant max(0.05 s, 20 expected periods), 0.2 s
+      when no frequency is expected).  A Schmitt trigger with
       hysteresis ``hyst * deviation`` around the mean finds rising edges;
       the crossing time is interpolated linearly between the last sample at or
       below the mean and the next one.
@@ -584,13 +585,12 @@ class _RefTracker:
             self._crossing(t, start + e)
             seg = e
         self._fill(seg, n, start, cyc, hz, locked)
-        if n:
-            self.high = bool(high[-1])
-            if nonpos[-1] >= 0:
-                j = nonpos[-1]
-                self.last_np = (start + j, d[j], d[j + 1] if j + 1 < n else None)
-            elif self.last_np is not None and self.last_np[2] is None:
-                self.last_np = (self.last_np[0], self.last_np[1], d[0])
+        self.high = bool(high[-1])
+        if nonpos[-1] >= 0:
+            j = nonpos[-1]
+            self.last_np = (start + j, d[j], d[j + 1] if j + 1 < n else None)
+        elif self.last_np is not None and self.last_np[2] is None:
+            self.last_np = (self.last_np[0], self.last_np[1], d[0])
         return cyc, hz, locked
 
     def _fill(self, i0: int, i1: int, start: int, cyc, hz, locked) -> None:
