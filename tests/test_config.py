@@ -1,0 +1,90 @@
+"""Config loading: every invalid value gives one line naming the field path."""
+
+import subprocess
+import sys
+import tomllib
+
+import pytest
+
+from livefilt.config import demo_config, load_config, parse_config
+from livefilt.errors import SettingError
+
+
+def demo_doc():
+    return demo_config().to_mapping()
+
+
+def test_demo_round_trips_through_toml(tmp_path):
+    s = demo_config()
+    p = tmp_path / "saved.toml"
+    p.write_text(s.to_toml("saved"))
+    again = load_config(p)
+    assert again.to_mapping() == s.to_mapping()
+    assert tomllib.loads(p.read_text())["source"]["driver"] == "simulated"
+
+
+def test_shipped_configs_load():
+    import pathlib
+    for p in sorted(pathlib.Path(__file__).parent.parent.joinpath("configs").glob("*.toml")):
+        load_config(p)
+
+
+@pytest.mark.parametrize("mutate, field, allowed", [
+    (lambda d: d["chains"][0]["stages"][2].update(band_hz=[1200, 30000]),
+     r"chains\[0\]\.stages\[2\]\.band_hz", "Nyquist"),
+    (lambda d: d["chains"][0]["stages"][0].update(cutoff_hz=24000),
+     r"chains\[0\]\.stages\[0\]\.cutoff_hz = 24000", "Nyquist"),
+    (lambda d: d["chains"][1]["stages"][0].update(r_ohm="10q"),
+     r"chains\[1\]\.stages\[0\]\.r_ohm", ""),
+    (lambda d: d["chains"][0]["detector"].update(slope_db_oct=30),
+     r"chains\[0\]\.detector\.slope_db_oct = 30", "6, 12, 18"),
+    (lambda d: d["source"].update(rate_hz=-1), r"source\.rate_hz = -1", "positive"),
+    (lambda d: d["source"].update(block=7), r"source\.block = 7", "16 to 65536"),
+    (lambda d: d["source"].update(driver="magic"), r"source\.driver = 'magic'", "simulated"),
+    (lambda d: d.update(extra={}), r"extra", "unknown key"),
+    (lambda d: d["chains"][1].update(name="A"), r"chains\[1\]\.name = 'A'", "differ"),
+    (lambda d: d["output"].update(interval_s=0), r"output\.interval_s = 0", "positive"),
+    (lambda d: d["reference"].update(frequency_hz=30000), r"reference\.frequency_hz", ""),
+    (lambda d: d.pop("reference"), r"chains\[0\]\.detector\.type", "reference"),
+    (lambda d: d["chains"][0].update(input=99), r"chains\[0\]\.input = 99", "channel"),
+    (lambda d: d.update(chains=[]), r"chains", "at least one"),
+])
+def test_invalid_values_name_the_field(mutate, field, allowed):
+    d = demo_doc()
+    mutate(d)
+    with pytest.raises(SettingError, match=field) as e:
+        parse_config(d)
+    assert allowed in str(e.value)
+    assert "\n" not in str(e.value)
+
+
+def test_missing_file_and_bad_toml(tmp_path):
+    with pytest.raises(SettingError, match="file not found"):
+        load_config(tmp_path / "nope.toml")
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[source\nrate_hz = 1")
+    with pytest.raises(SettingError, match="not valid TOML"):
+        load_config(bad)
+
+
+def test_at_rate_rechecks_against_the_new_nyquist():
+    s = demo_config()
+    with pytest.raises(SettingError, match=r"reference\.frequency_hz = 1370.*Nyquist, 1000 Hz"):
+        s.at_rate(2000)
+    with pytest.raises(SettingError, match=r"chains\[0\]\.stages\[2\]\.band_hz"):
+        s.at_rate(3000)
+
+
+def test_cli_reports_one_line_and_exit_2(tmp_path):
+    d = demo_doc()
+    d["chains"][0]["stages"][0]["cutoff_hz"] = 30000
+    from livefilt.tomlout import dumps
+    p = tmp_path / "bad.toml"
+    p.write_text(dumps(d))
+    r = subprocess.run([sys.executable, "-m", "livefilt", "run", "--config", str(p), "--duration", "0.1"],
+                       capture_output=True, text=True, timeout=60)
+    assert r.returncode == 2
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in r.stderr
+    assert lines[0].startswith("livefilt: chains[0].stages[0].cutoff_hz = 30000")
+    assert "24000" in lines[0]
