@@ -188,13 +188,25 @@ class SimulatedSource(Source):
 
     # -- generation ----------------------------------------------------
     def generate(self, start: int, n: int) -> np.ndarray:
-        """Frames ``start .. start+n-1`` as float32 (n, 2); chunk-aligned calls
-        are deterministic for the seed."""
+        """Frames ``start .. start+n-1`` as float32 (n, 2), the same for a seed
+        however the range is split (noise is drawn per 4096-frame chunk)."""
+        if start % CHUNK or n != CHUNK:
+            out = np.empty((n, 2), dtype=np.float32)
+            k = start - start % CHUNK
+            while k < start + n:
+                piece = self._generate_chunk(k, CHUNK)
+                lo, hi = max(k, start), min(k + CHUNK, start + n)
+                out[lo - start:hi - start] = piece[lo - k:hi - k]
+                k += CHUNK
+            return out
+        return self._generate_chunk(start, n)
+
+    def _generate_chunk(self, start: int, n: int) -> np.ndarray:
         sc, fs = self.scene, self.rate_hz
         k = np.arange(start, start + n, dtype=np.int64)
         t = k / fs
         chunk_id = start // CHUNK
-        rng = np.random.default_rng([self._seed, chunk_id, start % CHUNK])
+        rng = np.random.default_rng([self._seed, chunk_id])
         led = ((k * sc.led_hz) % fs) < 0.5 * fs  # exact 50 % duty from integer arithmetic
         led = led.astype(np.float64)
         d = sc.distance(t)
