@@ -8,6 +8,13 @@ The arrays ``.sos`` and ``.zi`` are allocated once and updated in place (a
 compiled kernel may hold them); they are replaced only when :meth:`retune`
 changes the number of sections.  One thread at a time: the engine calls
 :meth:`process` and, between blocks, :meth:`retune`.
+
+:meth:`SosFilter.process` runs one compiled call per block
+(:func:`livefilt.kernels.sos_block`, the same loop and order of terms as
+scipy's ``sosfilt``, so the samples agree to the last bit or so); when the
+compiled kernels are unavailable (:func:`livefilt.kernels.compiled` returns
+None, e.g. with ``LIVEFILT_NO_JIT=1``) it calls :func:`scipy.signal.sosfilt`.
+The choice is made when the filter is built.
 """
 
 from __future__ import annotations
@@ -16,6 +23,8 @@ import logging
 
 import numpy as np
 from scipy import signal
+
+from . import kernels
 
 __all__ = ["SosFilter"]
 
@@ -42,6 +51,8 @@ class SosFilter:
         self.sos = _as_sos(sos)
         self.zi = np.zeros((self.sos.shape[0], 2))
         self._last = 0.0  # last input sample seen, for retune
+        k = kernels.compiled()
+        self._kernel = k.sos_block if k is not None else None
 
     @property
     def sections(self) -> int:
@@ -71,6 +82,16 @@ class SosFilter:
             raise ValueError("out must be a 1-D float64 array at least as long as the block")
         if n == 0:
             return out[:0] if out is not None else np.empty(0)
+        if self._kernel is not None:
+            y = out[:n] if out is not None else np.empty(n)
+            if y.flags.c_contiguous:
+                self._kernel(self.sos, self.zi, x, y)
+            else:  # a strided ``out``: the kernel writes contiguous samples
+                tmp = np.empty(n)
+                self._kernel(self.sos, self.zi, x, tmp)
+                y[...] = tmp
+            self._last = float(x[-1])
+            return y
         y, zf = signal.sosfilt(self.sos, x, zi=self.zi)
         self.zi[...] = zf
         self._last = float(x[-1])
