@@ -76,3 +76,24 @@ def test_importing_livefilt_needs_neither_qt_nor_portaudio():
             "print(bad); sys.exit(1 if bad else 0)")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
     assert r.returncode == 0, r.stdout + r.stderr
+
+
+def test_ctrl_c_ends_cleanly_and_closes_the_run(tmp_path):
+    import signal
+    import time
+    env = dict(os.environ)
+    env.pop("DISPLAY", None)
+    p = subprocess.Popen([sys.executable, "-m", "livefilt", "run", "--out", str(tmp_path)],
+                         stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline and not any(tmp_path.glob("run-*/raw.wav")):
+        time.sleep(0.1)
+    time.sleep(1.5)
+    p.send_signal(signal.SIGINT)
+    out, err = p.communicate(timeout=30)
+    assert p.returncode == 0, err
+    assert "Traceback" not in err
+    (folder,) = tmp_path.glob("run-*")
+    run = read_run(folder)
+    assert "stopped_utc" in run.meta["run"]
+    assert run.raw.shape[0] == run.meta["run"]["frames"] > 0
