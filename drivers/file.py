@@ -62,6 +62,12 @@ class FileSource(Source):
             raise SettingError("source.loop", loop, "must be true or false")
         return cls(path, pace, loop, block)
 
+    @classmethod
+    def probe(cls):
+        from livefilt.source import DeviceInfo
+        return [DeviceInfo(name="any .wav file or run folder",
+                           note="livefilt run --input PATH [--fast]")]
+
     def open(self) -> None:
         p = self.path
         wav = p
