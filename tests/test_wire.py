@@ -6,6 +6,9 @@ the ADC transfer code * vref / 2**bits (common practice, e.g. the ATmega328P
 datasheet's ADC section).
 """
 
+import pathlib
+import re
+
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, assume, given, settings
@@ -58,6 +61,17 @@ def test_round_trip_description_and_samples():
         np.testing.assert_array_equal(e.words, words_for(s))
     assert (parser.frames, parser.seq_gaps, parser.crc_errors, parser.skipped_bytes) == (3, 0, 0, 0)
     assert parser.offset == len(data)
+
+
+def test_protocol_example_is_what_the_builder_makes():
+    doc = (pathlib.Path(wire.__file__).parent / "firmware" / "PROTOCOL.md").read_text()
+    line = re.search(r"^ {4}(E7 1A .*)$", doc, re.M).group(1)
+    frame = bytes.fromhex(line.replace(" ", ""))
+    assert frame == wire.build_frame(wire.KIND_SAMPLES, 3, bytes.fromhex("0082FF01"))
+    desc = wire.Description(rate_hz=1000.0, block=2)
+    (event,) = wire.FrameParser(desc).feed(frame)
+    np.testing.assert_array_equal(wire.to_frames(desc, event.words)[:, 1], [1.0, 0.0])
+    assert list(event.words[:, 0] & 0x3FF) == [512, 511]
 
 
 def test_to_frames_scales_to_volts_and_extracts_the_led():
