@@ -11,8 +11,8 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``mix_internal_rows(x, frac0, cycles_per_sample, phase_rad, b0, b1, a1,
-    zi, first, every, rows)``: dual-phase mixer on an internal reference,
+  - ``mix_internal_rows(x, frac0, cycles_per_sample, phase_rad, lead, b0,
+    b1, a1, zi, first, every, rows)``: dual-phase mixer on an internal reference,
     then the detector's first-order output sections; returns the number of
     rows written.
   - ``mix_cycles_rows(x, cycles, phase_rad, b0, b1, a1, zi, first, every,
@@ -125,21 +125,27 @@ def sos_block(sos, zi, x, y):
 
 
 @_jit
-def mix_internal_rows(x, frac0, cps, phase, b0, b1, a1, zi, first, every, rows):
+def mix_internal_rows(x, frac0, cps, phase, lead, b0, b1, a1, zi, first, every, rows):
     """Internal-reference lock-in over one block; rows (2, m) written, m returned.
 
-    The reference phase at sample ``k`` is ``2 pi (k cps + frac0) + phase``
-    (the straightforward path's formula), evaluated exactly every
-    :data:`RESEED` samples and carried between by phasor rotation.
+    The reference phase ``j`` samples after the block start is
+    ``2 pi (j cps + frac0) + phase`` (the straightforward path's formula).
+    It is evaluated exactly at the sample indices that are multiples of
+    :data:`RESEED` (``lead`` = block start index mod RESEED) and carried
+    between them by phasor rotation; so the phasor at a sample does not
+    depend on how the stream was split into blocks.
     """
     rot_c = math.cos(_TWO_PI * cps)
     rot_s = math.sin(_TWO_PI * cps)
-    c = 1.0
-    s = 0.0
+    theta = (-lead * cps + frac0) * _TWO_PI + phase
+    c = math.cos(theta)
+    s = math.sin(theta)
+    for _ in range(lead):
+        c, s = c * rot_c - s * rot_s, s * rot_c + c * rot_s
     m = 0
     due = first
     for k in range(x.shape[0]):
-        if k % RESEED == 0:
+        if (k + lead) % RESEED == 0:
             theta = (k * cps + frac0) * _TWO_PI + phase
             c = math.cos(theta)
             s = math.sin(theta)
@@ -225,7 +231,7 @@ def _build() -> _Kernels:
     rows = np.zeros((2, 4))
     sos_block(np.array([[1.0, 0, 0, 1, 0, 0]]), np.zeros((1, 2)), x, np.zeros(4))
     sos_block(np.array([[1.0, 0, 0, 1, 0, 0]]), np.zeros((1, 2)), x[::2], np.zeros(2))
-    mix_internal_rows(x, 0.0, 0.1, 0.0, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
+    mix_internal_rows(x, 0.0, 0.1, 0.0, 3, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     mix_cycles_rows(x, x, 0.0, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     square_rows(x, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     return _Kernels()
