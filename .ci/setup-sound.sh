@@ -9,7 +9,8 @@
 #
 # What it sets up:
 # - PulseAudio with tests/sound/pulse.pa: the native protocol and a float32
-#   48 kHz null sink "livefilt_loop" (bit-exact loopback).  --disable-shm=yes,
+#   48 kHz null sink "livefilt_loop" (bit-exact loopback, no rewinds: see the
+#   comment there).  --disable-shm=yes,
 #   because the daemon crashed without it on this machine class.
 # - /etc/alsa/conf.d/60-livefilt-loop.conf from tests/sound/asound-livefilt.conf:
 #   an ALSA device "livefilt_loop" (playback to the sink, capture from its
@@ -65,7 +66,7 @@ fi
 if ! pactl list short sinks | grep -q "^[0-9]*[[:space:]]$sink[[:space:]]"; then
     # a server we did not start (a desktop session): add our sink to it
     pactl load-module module-null-sink sink_name=$sink format=float32le rate=48000 \
-        channels=2 channel_map=front-left,front-right \
+        channels=2 channel_map=front-left,front-right norewinds=1 \
         sink_properties=device.description=livefilt-loop >/dev/null
 fi
 
