@@ -1,5 +1,15 @@
-"""The live window (pyqtgraph on PySide6). Placeholder until the window lands."""
+"""The live window (pyqtgraph on PySide6).
 
+Importing this package imports Qt; ``import livefilt`` does not.
 
-def run_window(settings, duration_s=None, screenshot=None, out=None):
-    raise ImportError("the live window is not built yet", name="livefilt.window")
+Modules, in data-flow order: :mod:`.strip` (strip chart and its min/max
+reducer), :mod:`.strength` (detected strength plots and the big read-out),
+:mod:`.spectrum` (Welch spectra and chain responses), :mod:`.editor`
+(settings forms), :mod:`.notes` (distance notes and recording),
+:mod:`.status` (status line), :mod:`.main` (the window and
+:func:`run_window`), :mod:`.bench` (frame rate, drawing load and latency).
+"""
+
+from .main import MainWindow, run_window
+
+__all__ = ["MainWindow", "run_window"]

@@ -1,0 +1,178 @@
+"""Distance notes and recording controls.
+
+:class:`NotesBar`: the user types the target's distance (metres) and an
+optional note, or steps the distance by a chosen increment (buttons, or
+Ctrl+Up / Ctrl+Down anywhere in the window); each becomes a marker through
+:meth:`Engine.add_marker`, stored in the run when recording, and is announced
+with ``marked`` so the charts can draw it.
+
+:class:`RecordBar`: start/stop a recording into a run folder under a chosen
+parent folder; shows elapsed time, bytes written, free disk and the folder.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import time
+
+from PySide6 import QtCore, QtWidgets
+
+from ..errors import LivefiltError
+from ..readout import si
+from . import palette
+
+__all__ = ["NotesBar", "RecordBar"]
+
+log = logging.getLogger(__name__)
+
+
+def _metres(text: str, what: str) -> float:
+    try:
+        v = float(text.strip().replace(",", "."))
+    except ValueError:
+        raise ValueError(f"{what} = {text!r}: must be a number of metres, e.g. 1.25") from None
+    if not math.isfinite(v):
+        raise ValueError(f"{what} = {text!r}: must be a finite number of metres")
+    return v
+
+
+class NotesBar(QtWidgets.QGroupBox):
+    """Distance entry, step buttons and the list of recent markers."""
+
+    marked = QtCore.Signal(dict)
+
+    def __init__(self, engine, parent=None):
+        super().__init__("Distance notes", parent)
+        self.engine = engine
+        form = QtWidgets.QFormLayout(self)
+        self.distance = QtWidgets.QLineEdit()
+        self.distance.setPlaceholderText("metres, e.g. 1.5")
+        self.distance.returnPressed.connect(self.mark)
+        self.note = QtWidgets.QLineEdit()
+        self.note.setPlaceholderText("optional, e.g. leaf edge")
+        self.note.returnPressed.connect(self.mark)
+        self.step = QtWidgets.QLineEdit("0.25")
+        form.addRow("distance (m)", self.distance)
+        form.addRow("note", self.note)
+        row = QtWidgets.QHBoxLayout()
+        mark = QtWidgets.QPushButton("Mark")
+        mark.clicked.connect(self.mark)
+        down = QtWidgets.QPushButton("− step (Ctrl+↓)")
+        down.clicked.connect(lambda: self.step_by(-1))
+        up = QtWidgets.QPushButton("+ step (Ctrl+↑)")
+        up.clicked.connect(lambda: self.step_by(+1))
+        for w in (mark, down, up):
+            row.addWidget(w)
+        form.addRow(row)
+        form.addRow("step (m)", self.step)
+        self.error = QtWidgets.QLabel()
+        self.error.setStyleSheet("color: #b23a30;")
+        self.error.setWordWrap(True)
+        form.addRow(self.error)
+        self.recent = QtWidgets.QListWidget()
+        self.recent.setMaximumHeight(90)
+        form.addRow(self.recent)
+
+    def mark(self) -> dict | None:
+        """Marker from the typed distance and note; None (and a message) if invalid."""
+        text = self.distance.text()
+        try:
+            d = _metres(text, "distance") if text.strip() else None
+        except ValueError as e:
+            return self._refuse(self.distance, str(e))
+        if d is None and not self.note.text().strip():
+            return self._refuse(self.distance, "distance: type the target's distance in metres "
+                                               "(or a note)")
+        self._refuse(None, "")
+        m = self.engine.add_marker(d, self.note.text().strip())
+        self.note.clear()
+        label = (f"{m['distance_m']:g} m" if "distance_m" in m else "") + (
+            f"  {m['note']}" if m.get("note") else "")
+        self.recent.insertItem(0, f"{m['time_s']:8.2f} s   {label.strip()}")
+        self.marked.emit(m)
+        return m
+
+    def step_by(self, sign: int) -> dict | None:
+        """Move the distance by ± step and mark it."""
+        try:
+            step = _metres(self.step.text(), "step")
+            d = _metres(self.distance.text() or "0", "distance")
+        except ValueError as e:
+            return self._refuse(self.step if str(e).startswith("step") else self.distance, str(e))
+        self.distance.setText(f"{d + sign * step:.4g}")
+        return self.mark()
+
+    def _refuse(self, field, message: str):
+        for w in (self.distance, self.step):
+            w.setStyleSheet(palette.ERROR_STYLE if w is field else "")
+        self.error.setText(message)
+        return None
+
+
+class RecordBar(QtWidgets.QGroupBox):
+    """Start/stop recording; elapsed time, bytes written, free disk, folder."""
+
+    def __init__(self, engine, parent_dir: str = "runs", parent=None):
+        super().__init__("Recording", parent)
+        self.engine = engine
+        self._t0 = None
+        form = QtWidgets.QFormLayout(self)
+        self.parent_dir = QtWidgets.QLineEdit(parent_dir)
+        form.addRow("into folder", self.parent_dir)
+        self.button = QtWidgets.QPushButton("Start recording")
+        self.button.clicked.connect(self.toggle)
+        form.addRow(self.button)
+        self.info = QtWidgets.QLabel("not recording")
+        self.info.setWordWrap(True)
+        self.info.setTextInteractionFlags(QtCore.Qt.TextSelectableByMouse)
+        form.addRow(self.info)
+        self.last_folder = None
+
+    @property
+    def recording(self) -> bool:
+        return self.engine.recorder is not None
+
+    def toggle(self) -> None:
+        if self.recording:
+            self.stop()
+        else:
+            self.start()
+
+    def start(self, parent_dir: str | None = None):
+        """Start a run folder under ``parent_dir`` (default: the field); returns the writer."""
+        if parent_dir is not None:
+            self.parent_dir.setText(str(parent_dir))
+        try:
+            rec = self.engine.start_recording(self.parent_dir.text().strip() or "runs")
+        except (LivefiltError, OSError) as e:
+            self.info.setText(f"cannot record: {e}")
+            self.info.setStyleSheet("color: #b23a30;")
+            return None
+        self._t0 = time.monotonic()
+        self.last_folder = rec.folder
+        self.button.setText("Stop recording")
+        self.info.setStyleSheet("")
+        self.refresh()
+        return rec
+
+    def stop(self):
+        """Stop and close the run folder (its files complete); returns the writer."""
+        rec = self.engine.stop_recording()
+        self.button.setText("Start recording")
+        if rec is not None:
+            self.info.setText(f"saved {si(rec.bytes_written, 'B', 3)} to\n{rec.folder}")
+        return rec
+
+    def refresh(self) -> None:
+        rec = self.engine.recorder
+        if rec is None or self._t0 is None:
+            return
+        t = time.monotonic() - self._t0
+        m, s = divmod(int(t), 60)
+        try:
+            free = si(rec.free_bytes(), "B", 3)
+        except OSError:
+            free = "?"
+        self.info.setText(f"● recording {m:02d}:{s:02d}   {si(rec.bytes_written, 'B', 3)} written"
+                          f"   {free} free\n{rec.folder}")

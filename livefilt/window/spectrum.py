@@ -1,0 +1,212 @@
+"""Spectrum of the raw input and of each chain's output, with the chains' responses.
+
+Power spectral density by Welch's method (:func:`scipy.signal.welch`, Hann
+window, 50 % overlap) over the last second of the tap, in dB re units²/Hz.
+Each chain's magnitude response (:meth:`Chain.response`) is drawn over it on
+its own gain axis at the right.  Vertical marks: the modulation frequency and
+the mains harmonics.  Frequency axis log or linear.
+"""
+
+from __future__ import annotations
+
+import logging
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtWidgets
+from scipy import signal
+
+from . import palette
+from .strip import fit_range
+
+__all__ = ["SpectrumPanel", "welch_db"]
+
+log = logging.getLogger(__name__)
+
+RESOLUTION_HZ = 6.0   # aimed Welch bin width
+SPAN_S = 1.0          # data per estimate
+
+
+def welch_db(x: np.ndarray, rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
+    """(f, 10 log10 PSD) of each row of ``x`` (last axis time)."""
+    nper = int(2 ** round(np.log2(rate_hz / RESOLUTION_HZ)))
+    nper = max(64, min(nper, x.shape[-1]))
+    f, p = signal.welch(x, fs=rate_hz, window="hann", nperseg=nper, axis=-1)
+    with np.errstate(divide="ignore"):
+        return f, 10 * np.log10(p)
+
+
+class SpectrumPanel(QtWidgets.QWidget):
+    """Welch spectra, response overlays and frequency marks.
+
+    Parameters
+    ----------
+    engine : Engine (read: tap, chains, rate_hz, reference)
+    inputs : list of int
+        Tap stream indices of the raw channels to show.
+    mains_hz : float
+    """
+
+    def __init__(self, engine, inputs: list[int], mains_hz: float = 50.0, parent=None):
+        super().__init__(parent)
+        self.engine = engine
+        self.tap = engine.tap
+        self.rate_hz = engine.rate_hz
+        n_raw = len(self.tap.names) - len(engine.chains)
+        self.streams = list(inputs) + [n_raw + k for k in range(len(engine.chains))]
+        self.mains_hz = mains_hz
+        self.log_x = True
+        lay = QtWidgets.QVBoxLayout(self)
+        lay.setContentsMargins(0, 0, 0, 0)
+        bar = QtWidgets.QHBoxLayout()
+        self.log_box = QtWidgets.QCheckBox("log frequency")
+        self.log_box.setChecked(True)
+        self.log_box.toggled.connect(self.set_log)
+        bar.addWidget(self.log_box)
+        bar.addStretch(1)
+        lay.addLayout(bar)
+        self.plot = pg.PlotWidget()
+        lay.addWidget(self.plot, 1)
+        p = self.p = self.plot.getPlotItem()
+        p.setMenuEnabled(False)
+        p.hideButtons()
+        p.setLabel("left", f"PSD (dB re {engine.source.units}²/Hz)")
+        p.setLabel("bottom", "frequency (Hz)")
+        p.getAxis("left").setWidth(70)
+        p.getAxis("left").enableAutoSIPrefix(False)
+        p.addLegend(offset=(-6, 4), labelTextSize="9pt")
+        p.disableAutoRange()
+        # a second view box for the chains' gain, sharing x, with its own axis
+        self.gain_vb = pg.ViewBox()
+        p.showAxis("right")
+        p.scene().addItem(self.gain_vb)
+        p.getAxis("right").linkToView(self.gain_vb)
+        p.getAxis("right").setLabel("chain gain (dB)")
+        self.gain_vb.setXLink(p)
+        self.gain_vb.setYRange(-90, 10, padding=0)
+        self.gain_vb.setMouseEnabled(x=False, y=False)
+        p.vb.sigResized.connect(self._sync_views)
+        names = self.tap.names
+        self.curves = []
+        for k, i in enumerate(self.streams):
+            if k < len(inputs):
+                pen = palette.raw_pen()
+                label = names[i]
+            else:
+                pen = palette.chain_pen(k - len(inputs), 1.2)
+                label = f"{names[i]} output"
+            self.curves.append(p.plot(pen=pen, name=label))
+        self.gain_curves = []
+        for k, _ in enumerate(engine.chains):
+            c = pg.PlotCurveItem(pen=palette.chain_pen(k, 2.4))
+            c.setOpacity(0.55)
+            self.gain_vb.addItem(c)
+            self.gain_curves.append(c)
+        self._gain_for = [None] * len(engine.chains)
+        self.marks = []
+        self._f = None
+        self._spec = None
+        self._place_marks()
+        self.set_log(True)
+
+    # -- public ---------------------------------------------------------
+    def set_log(self, on: bool) -> None:
+        """Log or linear frequency axis."""
+        self.log_x = bool(on)
+        self.p.getAxis("bottom").setTicks(_log_ticks(self.rate_hz / 2) if self.log_x else None)
+        self._gain_for = [None] * len(self._gain_for)
+        self._place_marks()
+        nyq = self.rate_hz / 2
+        lo, hi = (self._x(np.array([10.0, nyq])))
+        self.p.setXRange(lo if self.log_x else 0.0, hi, padding=0)
+        if self._f is not None:
+            self._draw_spectra()
+        self.refresh_responses()
+
+    def refresh(self) -> None:
+        """New Welch estimate from the last second of the tap; responses if changed."""
+        start, data = self.tap.last(SPAN_S)
+        if data.shape[1] < 256:
+            return
+        self._f, self._spec = welch_db(data[self.streams], self.rate_hz)
+        self._draw_spectra()
+        self.refresh_responses()
+
+    def refresh_responses(self) -> None:
+        """Redraw a chain's gain curve when its settings changed."""
+        f = self._grid()
+        for k, ch in enumerate(self.engine.chains):
+            if self._gain_for[k] is ch.settings:
+                continue
+            with np.errstate(divide="ignore"):
+                g = 20 * np.log10(np.abs(ch.response(f)))
+            self.gain_curves[k].setData(self._x(f), np.clip(g, -200, 60))
+            self._gain_for[k] = ch.settings
+
+    # -- private --------------------------------------------------------
+    def _x(self, f: np.ndarray) -> np.ndarray:
+        if not self.log_x:
+            return f
+        with np.errstate(divide="ignore"):
+            return np.log10(f)
+
+    def _grid(self) -> np.ndarray:
+        nyq = self.rate_hz / 2
+        if self.log_x:
+            return np.logspace(0, np.log10(nyq * 0.999), 800)
+        return np.linspace(1.0, nyq * 0.999, 1200)
+
+    def _draw_spectra(self) -> None:
+        f = self._f[1:]
+        x = self._x(f)
+        top = -np.inf
+        for c, s in zip(self.curves, self._spec):
+            c.setData(x, s[1:], connect="finite")
+            fin = s[1:][np.isfinite(s[1:])]
+            if len(fin):
+                top = max(top, fin.max())
+        if np.isfinite(top):
+            # 160 dB below the top: the quietest chain output stays in view
+            fit_range(self.p, top - 160, top + 5)
+
+    def _place_marks(self) -> None:
+        for ln in self.marks:
+            self.p.removeItem(ln)
+        self.marks = []
+        ref = self.engine.reference
+        nyq = self.rate_hz / 2
+        if ref is not None and ref.frequency_hz:
+            f0 = ref.frequency_hz
+            self.marks.append(pg.InfiniteLine(
+                self._x(np.array([f0]))[0], angle=90, pen=palette.mark_pen("modulation"),
+                label=f"modulation {f0:g} Hz",
+                labelOpts={"position": 0.95, "color": palette.MODULATION}))
+        for h in range(1, 11):
+            fh = h * self.mains_hz
+            if fh >= nyq:
+                break
+            self.marks.append(pg.InfiniteLine(
+                self._x(np.array([fh]))[0], angle=90, pen=palette.mark_pen("mains"),
+                label=f"mains {self.mains_hz:g} Hz" if h == 1 else None,
+                labelOpts={"position": 0.06, "color": palette.FOREGROUND}))
+        for ln in self.marks:
+            self.p.addItem(ln, ignoreBounds=True)
+
+    def _sync_views(self) -> None:
+        self.gain_vb.setGeometry(self.p.vb.sceneBoundingRect())
+        self.gain_vb.linkedViewChanged(self.p.vb, self.gain_vb.XAxis)
+
+
+def _log_ticks(nyq: float) -> list:
+    """Tick levels for a log10 frequency axis: labelled 1, 10, 100 Hz, 1 k...; 2 and 5 unlabelled."""
+    major, minor = [], []
+    for e in range(0, 7):
+        for m in (1, 2, 5):
+            f = m * 10.0 ** e
+            if f > nyq:
+                break
+            if m == 1:
+                major.append((e, f"{f / 1000:g} k" if f >= 1000 else f"{f:g}"))
+            else:
+                minor.append((np.log10(f), f"{f / 1000:g} k" if f >= 1000 else f"{f:g}"))
+    return [major, minor]

@@ -1,0 +1,39 @@
+"""Status line: driver, device, rate, block, losses (red when non-zero), load, display fps."""
+
+from __future__ import annotations
+
+from PySide6 import QtWidgets
+
+__all__ = ["StatusLine"]
+
+
+class StatusLine(QtWidgets.QStatusBar):
+    """Refreshed a few times a second from the engine's counters."""
+
+    def __init__(self, engine, parent=None):
+        super().__init__(parent)
+        self.engine = engine
+        src = engine.source
+        self.source = QtWidgets.QLabel(f"{src.driver}: {src.device}")
+        self.rate = QtWidgets.QLabel(f"{engine.rate_hz:g} Hz, block {engine.block}")
+        self.losses = QtWidgets.QLabel()
+        self.load = QtWidgets.QLabel()
+        self.fps = QtWidgets.QLabel()
+        self.note = QtWidgets.QLabel()
+        for w in (self.source, self.rate, self.losses, self.load, self.fps):
+            self.addWidget(w)
+        self.addPermanentWidget(self.note)
+
+    def refresh(self, fps: float) -> None:
+        e = self.engine
+        st = e.stats
+        bad = st.overruns or st.dropped
+        self.losses.setText(f"overruns {st.overruns}, dropped {st.dropped} samples")
+        self.losses.setStyleSheet("color: #b23a30; font-weight: bold;" if bad else "")
+        self.load.setText(f"processing {100 * st.load(e.rate_hz):.1f} % of real time")
+        self.fps.setText(f"display {fps:.0f} fps")
+        if e.error is not None:
+            self.note.setText(f"acquisition stopped: {e.error}")
+            self.note.setStyleSheet("color: #b23a30; font-weight: bold;")
+        elif e.finished.is_set():
+            self.note.setText("source ended")

@@ -1,0 +1,206 @@
+"""Detected strength: amplitude and SNR of each chain over time, and the big read-out.
+
+:class:`StrengthPlots` draws each chain's detector rows (amplitude, RMS in the
+source's units, log scale; SNR in dB) on the strip chart's time axis.
+:class:`BigReadout` shows the latest values in large type, readable from two
+metres: amplitude, noise and SNR per chain, and A minus B in dB.
+
+Both read only ``tap.rows`` (newest rows first, never the whole deque).
+"""
+
+from __future__ import annotations
+
+import itertools
+import logging
+import math
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from ..readout import si
+from . import palette
+from .strip import fit_range
+
+__all__ = ["StrengthPlots", "BigReadout", "RowHistory"]
+
+log = logging.getLogger(__name__)
+
+
+class RowHistory:
+    """Recent detector rows of one chain as arrays (time, amplitude, noise, SNR).
+
+    Parameters
+    ----------
+    rows : deque of detector rows (written by the engine thread)
+    rate_hz : float
+    keep_s : float
+        History kept, seconds.
+    """
+
+    _PEEK = 256  # newest rows looked at per refresh; older unseen ones are skipped
+
+    def __init__(self, rows, rate_hz: float, keep_s: float = 60.0):
+        self.rows = rows
+        self.rate_hz = rate_hz
+        self.keep_s = keep_s
+        self.t = np.zeros(0)
+        self.amp = np.zeros(0)
+        self.noise = np.zeros(0)
+        self.snr = np.zeros(0)
+        self.last_index = -1
+        self.latest = None
+
+    def update(self) -> bool:
+        """Take rows newer than the last seen; True if any came."""
+        try:  # the engine may append while we look; try again next frame
+            tail = list(itertools.islice(reversed(self.rows), self._PEEK))
+        except RuntimeError:
+            return False
+        new = [r for r in tail if int(r["index"]) > self.last_index]
+        if not new:
+            return False
+        new.reverse()
+        arr = np.array(new)
+        self.latest = new[-1]
+        self.last_index = int(arr["index"][-1])
+        self.t = np.append(self.t, arr["index"] / self.rate_hz)
+        self.amp = np.append(self.amp, arr["amplitude"].astype(float))
+        self.noise = np.append(self.noise, arr["noise"].astype(float))
+        self.snr = np.append(self.snr, arr["snr_db"].astype(float))
+        keep = self.t >= self.t[-1] - self.keep_s
+        if not keep[0]:
+            self.t, self.amp, self.noise, self.snr = (a[keep] for a in
+                                                      (self.t, self.amp, self.noise, self.snr))
+        return True
+
+
+class StrengthPlots(pg.GraphicsLayoutWidget):
+    """Amplitude (log) and SNR (dB) of every chain versus time."""
+
+    def __init__(self, histories: dict[str, RowHistory], units: str, parent=None):
+        super().__init__(parent=parent)
+        self.histories = histories
+        self.ci.setSpacing(2)
+        self.p_amp = self.addPlot(row=0, col=0)
+        self.p_snr = self.addPlot(row=1, col=0)
+        self.p_amp.setLabel("left", f"amplitude, {units} rms")
+        self.p_snr.setLabel("left", "SNR (dB)")
+        self.p_snr.setLabel("bottom", "time since start (s)")
+        self.p_amp.setLogMode(y=True)
+        self.p_amp.hideAxis("bottom")
+        self.p_amp.setXLink(self.p_snr)
+        for p in (self.p_amp, self.p_snr):
+            p.setMenuEnabled(False)
+            p.hideButtons()
+            p.disableAutoRange()
+            p.getAxis("left").setWidth(70)
+            p.getAxis("left").enableAutoSIPrefix(False)
+        self.p_amp.addLegend(offset=(6, -4), labelTextSize="9pt")
+        self.curves = {}
+        for k, name in enumerate(histories):
+            self.curves[name] = (self.p_amp.plot(pen=palette.chain_pen(k, 2.0), name=name),
+                                 self.p_snr.plot(pen=palette.chain_pen(k, 2.0)))
+        self._markers: list[tuple[float, list]] = []
+
+    def refresh(self) -> None:
+        """Draw new rows; fit the y ranges to what the time window shows."""
+        changed = False
+        for name, h in self.histories.items():
+            if not h.update():
+                continue
+            changed = True
+            amp = np.where(h.amp > 0, h.amp, np.nan)
+            c_amp, c_snr = self.curves[name]
+            c_amp.setData(h.t, amp, connect="finite")
+            c_snr.setData(h.t, h.snr, connect="finite")
+        if changed:
+            self._fit()
+
+    def _fit(self) -> None:
+        t0, t1 = self.p_snr.vb.viewRange()[0]
+        amp, snr = [], []
+        for h in self.histories.values():
+            sel = h.t >= t0
+            amp.append(h.amp[sel])
+            snr.append(h.snr[sel])
+        amp, snr = np.concatenate(amp), np.concatenate(snr)
+        amp = amp[np.isfinite(amp) & (amp > 0)]
+        snr = snr[np.isfinite(snr)]
+        if len(amp):
+            # settling rows start near zero: show at most four decades below the top
+            top = np.log10(amp.max())
+            fit_range(self.p_amp, max(np.log10(amp.min()), top - 4), top)
+        if len(snr):
+            fit_range(self.p_snr, snr.min(), snr.max())
+
+    def add_marker(self, time_s: float) -> None:
+        lines = []
+        for p in (self.p_amp, self.p_snr):
+            ln = pg.InfiniteLine(time_s, angle=90, pen=palette.mark_pen("marker"))
+            p.addItem(ln)
+            lines.append((p, ln))
+        self._markers.append((time_s, lines))
+        while len(self._markers) > 200:
+            for p, ln in self._markers.pop(0)[1]:
+                p.removeItem(ln)
+
+
+class BigReadout(QtWidgets.QFrame):
+    """Latest amplitude, noise and SNR per chain in large type; A minus B in dB."""
+
+    def __init__(self, histories: dict[str, RowHistory], units: str, parent=None):
+        super().__init__(parent)
+        self.histories = histories
+        self.units = units
+        self.setFrameShape(QtWidgets.QFrame.StyledPanel)
+        grid = QtWidgets.QGridLayout(self)
+        grid.setContentsMargins(8, 6, 8, 6)
+        grid.setHorizontalSpacing(14)
+        grid.setVerticalSpacing(0)
+        heads = ["", f"amplitude ({units} rms)", "noise", "SNR"]
+        for j, h in enumerate(heads):
+            lab = QtWidgets.QLabel(h)
+            lab.setStyleSheet(f"color: {palette.FOREGROUND};")
+            grid.addWidget(lab, 0, j, alignment=QtCore.Qt.AlignRight if j else QtCore.Qt.AlignLeft)
+        self.labels = {}
+        styles = ["──", "- -", "···", "-·-"]
+        for k, name in enumerate(histories):
+            colour = palette.chain_colour(k)
+            tag = QtWidgets.QLabel(f"{name} {styles[k % len(styles)]}")
+            tag.setFont(palette.big_font(24))
+            tag.setStyleSheet(f"color: {colour};")
+            grid.addWidget(tag, 1 + k, 0)
+            row = []
+            for j, size in ((1, 30), (2, 16), (3, 30)):
+                lab = QtWidgets.QLabel("—")
+                lab.setFont(palette.big_font(size, bold=size > 20))
+                lab.setStyleSheet(f"color: {colour};")
+                lab.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
+                sample = "−888.8 dB" if j == 3 else "888.8 m" + units
+                lab.setMinimumWidth(QtGui.QFontMetrics(lab.font()).horizontalAdvance(sample) + 6)
+                grid.addWidget(lab, 1 + k, j)
+                row.append(lab)
+            self.labels[name] = row
+        self.diff = QtWidgets.QLabel("")
+        self.diff.setFont(palette.big_font(20))
+        self.diff.setStyleSheet(f"color: {palette.FOREGROUND};")
+        grid.addWidget(self.diff, 1 + len(histories), 0, 1, 4)
+        names = list(histories)
+        self._pair = names[:2] if len(names) >= 2 else None
+
+    def refresh(self) -> None:
+        amps = {}
+        for name, h in self.histories.items():
+            r = h.latest
+            if r is None:
+                continue
+            a, n, s = float(r["amplitude"]), float(r["noise"]), float(r["snr_db"])
+            amps[name] = a
+            la, ln, ls = self.labels[name]
+            la.setText(si(a, self.units))
+            ln.setText(si(n, self.units))
+            ls.setText("—" if not math.isfinite(s) else f"{s:5.1f} dB")
+        if self._pair and all(amps.get(n, 0) > 0 for n in self._pair):
+            a, b = self._pair
+            self.diff.setText(f"{a} − {b}:  {20 * math.log10(amps[a] / amps[b]):+.2f} dB")

@@ -1,0 +1,277 @@
+"""Scrolling strip chart of the raw input and each chain's output.
+
+The strip shows the last N seconds (1 to 60) on a shared time axis, in
+seconds since acquisition began.  Drawing every sample is far too slow
+(10 s at 192 kHz is 1.9 M points), so :class:`MinMaxReducer` keeps a ring of
+per-column (min, max) pairs, one column per pixel or so, and reduces only the
+samples that arrived since the last frame; peaks are never hidden.
+
+API
+---
+- :class:`MinMaxReducer`: push(start_index, data); arrays() -> (x, y) for drawing.
+- :class:`StripChart`: the two linked plots (input, filtered outputs); refresh().
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+
+import numpy as np
+import pyqtgraph as pg
+
+from . import palette
+
+__all__ = ["MinMaxReducer", "StripChart", "fit_range"]
+
+log = logging.getLogger(__name__)
+
+
+class MinMaxReducer:
+    """Ring of per-column (min, max) pairs of several streams.
+
+    Column ``c`` covers sample indices ``[c * spc, (c + 1) * spc)`` (``spc``
+    samples per column, fixed for the reducer's life), so a column's value
+    never depends on how the samples were split into frames.  The samples of
+    the column still filling are kept aside and drawn as a partial column.
+
+    Parameters
+    ----------
+    n_streams : int
+    rate_hz : float
+    seconds : float
+        Time span the ring covers.
+    columns : int
+        Wanted number of columns over ``seconds`` (about the plot's pixel width).
+    """
+
+    def __init__(self, n_streams: int, rate_hz: float, seconds: float, columns: int):
+        self.rate_hz = float(rate_hz)
+        self.seconds = float(seconds)
+        self.spc = max(1, int(round(rate_hz * seconds / max(columns, 1))))
+        self.n_cols = int(math.ceil(rate_hz * seconds / self.spc)) + 1
+        self.n_streams = n_streams
+        self.lo = np.full((n_streams, self.n_cols), np.nan, np.float32)
+        self.hi = np.full((n_streams, self.n_cols), np.nan, np.float32)
+        self.newest = None  # number of the newest complete column
+        self.oldest = None  # number of the oldest column ever written
+        self._pending = np.zeros((n_streams, 0), np.float32)
+        self._pending_start = 0
+
+    @property
+    def end_index(self) -> int:
+        """Sample index one past the last sample pushed."""
+        return self._pending_start + self._pending.shape[1]
+
+    def push(self, start_index: int, data: np.ndarray) -> None:
+        """Reduce ``data`` (n_streams, n) that starts at sample ``start_index``."""
+        n = data.shape[1]
+        if n == 0:
+            return
+        spc = self.spc
+        if self.oldest is None:
+            self.oldest = start_index // spc
+            self._pending_start = start_index
+        elif start_index != self.end_index:
+            # a gap (the display fell behind or the source lost frames): close
+            # the partial column and leave the skipped columns blank.
+            self._close_pending()
+            self._blank_until(start_index // spc - 1)
+            self._pending = self._pending[:, :0]
+            self._pending_start = start_index
+        if self._pending.shape[1]:
+            buf = np.concatenate([self._pending, data], axis=1)
+        else:
+            buf = data
+        b0 = self._pending_start
+        end = b0 + buf.shape[1]
+        first_col = b0 // spc
+        last_done = end // spc - 1  # newest column now complete
+        if last_done >= first_col:
+            cut = (last_done + 1) * spc - b0
+            seg = buf[:, :cut]
+            col = first_col
+            offset = b0 - first_col * spc
+            if offset:
+                head = seg[:, :spc - offset]
+                self._write(col, head.min(axis=1)[:, None], head.max(axis=1)[:, None])
+                seg = seg[:, spc - offset:]
+                col += 1
+            k = seg.shape[1] // spc
+            if k > self.n_cols:  # only the last n_cols columns can be shown
+                seg = seg[:, (k - self.n_cols) * spc:]
+                col += k - self.n_cols
+                k = self.n_cols
+            if k:
+                r = seg.reshape(self.n_streams, k, spc)
+                self._write(col, r.min(axis=2), r.max(axis=2))
+            self._pending = np.array(buf[:, cut:], dtype=np.float32)
+            self._pending_start = b0 + cut
+        else:
+            self._pending = np.array(buf, dtype=np.float32)
+
+    def arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """x (2m,) in seconds and y (n_streams, 2m): min and max of each column
+        in time order, the partial column last; NaN where nothing arrived."""
+        if self.newest is None and not self._pending.shape[1]:
+            return np.zeros(0), np.zeros((self.n_streams, 0))
+        newest = self.newest if self.newest is not None else self.oldest - 1
+        first = max(self.oldest, newest - self.n_cols + 1)
+        cols = np.arange(first, newest + 1)
+        pos = cols % self.n_cols
+        lo, hi = self.lo[:, pos], self.hi[:, pos]
+        if self._pending.shape[1]:
+            cols = np.append(cols, self._pending_start // self.spc)
+            lo = np.concatenate([lo, self._pending.min(axis=1)[:, None]], axis=1)
+            hi = np.concatenate([hi, self._pending.max(axis=1)[:, None]], axis=1)
+        m = len(cols)
+        x = np.repeat(cols * (self.spc / self.rate_hz), 2)
+        y = np.empty((self.n_streams, 2 * m), np.float32)
+        y[:, 0::2] = lo
+        y[:, 1::2] = hi
+        return x, y
+
+    # -- private --------------------------------------------------------
+    def _write(self, col0: int, lo: np.ndarray, hi: np.ndarray) -> None:
+        pos = np.arange(col0, col0 + lo.shape[1]) % self.n_cols
+        self.lo[:, pos] = lo
+        self.hi[:, pos] = hi
+        self.newest = col0 + lo.shape[1] - 1
+
+    def _close_pending(self) -> None:
+        p = self._pending
+        if p.shape[1]:
+            self._write(self._pending_start // self.spc, p.min(axis=1)[:, None], p.max(axis=1)[:, None])
+
+    def _blank_until(self, col: int) -> None:
+        start = (self.newest + 1) if self.newest is not None else self.oldest
+        if col < start:
+            return
+        start = max(start, col - self.n_cols + 1)
+        blank = np.full((self.n_streams, col - start + 1), np.nan, np.float32)
+        self._write(start, blank, blank)
+
+
+class StripChart(pg.GraphicsLayoutWidget):
+    """Input and each chain's output over the last ``seconds``, scrolling.
+
+    One plot for the raw input(s), then one per chain, stacked on a shared
+    time axis.  Each chain's plot carries its name and colour; its trace is
+    drawn with a solid pen on purpose: a dashed pen on a dense min/max
+    envelope costs several milliseconds per frame in Qt's raster engine and
+    reads as noise (the strength and spectrum plots use the dashed style).
+    Y ranges are set here, with hysteresis, rather than by pyqtgraph's
+    auto-range, which repaints every view a second time per frame.
+
+    Parameters
+    ----------
+    tap : livefilt.taps.Tap
+    inputs : list of int
+        Tap stream indices of the raw channels to show (the chains' inputs).
+    chains : list of (stream index, name)
+    units : str
+    seconds : float
+    """
+
+    def __init__(self, tap, inputs: list[int], chains: list[tuple[int, str]], units: str,
+                 seconds: float = 10.0, parent=None):
+        super().__init__(parent=parent)
+        self.tap = tap
+        self.streams = list(inputs) + [i for i, _ in chains]
+        self.seconds = float(seconds)
+        self.ci.setSpacing(0)
+        names = tap.names
+        self.plots, self.curves = [], []
+        rows = [(", ".join(names[i] for i in inputs), palette.raw_pen(), inputs)]
+        rows += [(f"{name} output", palette.chain_pen(k, 1.0).color(), [i])
+                 for k, (i, name) in enumerate(chains)]
+        for r, (title, pen, streams) in enumerate(rows):
+            p = self.addPlot(row=r, col=0)
+            p.setLabel("left", f"{title} ({units})", color=pg.mkPen(pen).color().name())
+            p.setMenuEnabled(False)
+            p.hideButtons()
+            p.disableAutoRange()
+            p.getAxis("left").setWidth(70)
+            p.getAxis("left").enableAutoSIPrefix(False)
+            if r:
+                p.setXLink(self.plots[0])
+            if r < len(rows) - 1:
+                p.getAxis("bottom").setStyle(showValues=False)
+            for _ in streams:
+                self.curves.append(p.plot(pen=pg.mkPen(pen, width=1)))
+            self.plots.append(p)
+        self.plots[-1].setLabel("bottom", "time since start (s)")
+        self._curve_plot = [p for p, (_, _, st) in zip(self.plots, rows) for _ in st]
+        self._markers: list[tuple[float, list]] = []
+        self.reducer: MinMaxReducer | None = None
+        self._cursor = 0
+        self.drawn_index = 0  # sample index one past the newest sample drawn
+
+    # -- public ---------------------------------------------------------
+    def set_seconds(self, seconds: float) -> None:
+        """Change the strip length (1 to 60 s); rebuilt from the tap's history."""
+        self.seconds = float(min(60.0, max(1.0, seconds)))
+        self.reducer = None
+
+    def refresh(self) -> None:
+        """Reduce what arrived since the last frame and redraw."""
+        tap = self.tap
+        want_cols = max(200, int(self.plots[0].vb.width()) or 800)
+        r = self.reducer
+        if r is None or abs(want_cols - r.n_cols) > 0.25 * r.n_cols:
+            r = self.reducer = MinMaxReducer(len(self.streams), tap.rate_hz, self.seconds, want_cols)
+            self._cursor = max(0, tap.end_index - int(self.seconds * tap.rate_hz))
+        start, data = tap.read_since(self._cursor)
+        if data.shape[1]:
+            self._cursor = start + data.shape[1]
+            r.push(start, data[self.streams])
+        x, y = r.arrays()
+        t_end = r.end_index / tap.rate_hz
+        t0 = max(0.0, t_end - self.seconds)
+        shown = x >= t0 - r.spc / tap.rate_hz
+        x, y = x[shown], y[:, shown]
+        for k, c in enumerate(self.curves):
+            c.setData(x, y[k], connect="finite")
+        ranges: dict = {}
+        for k, p in enumerate(self._curve_plot):
+            if len(x) and np.isfinite(y[k]).any():
+                lo, hi = float(np.nanmin(y[k])), float(np.nanmax(y[k]))
+                a, b = ranges.get(id(p), (lo, hi))
+                ranges[id(p)] = (min(a, lo), max(b, hi))
+        for p in self.plots:
+            if id(p) in ranges:
+                fit_range(p, *ranges[id(p)])
+        self.plots[0].setXRange(t0, max(t_end, self.seconds), padding=0)
+        self.drawn_index = r.end_index
+        self._prune_markers(t_end - 60.0)
+
+    def add_marker(self, time_s: float, label: str) -> None:
+        """Vertical line at ``time_s`` on every plot, labelled on the top one."""
+        lines = []
+        for p in self.plots:
+            ln = pg.InfiniteLine(time_s, angle=90, pen=palette.mark_pen("marker"),
+                                 label=label if p is self.plots[0] else None,
+                                 labelOpts={"position": 0.88, "color": palette.MARKER})
+            p.addItem(ln, ignoreBounds=True)
+            lines.append((p, ln))
+        self._markers.append((time_s, lines))
+
+    def _prune_markers(self, before_s: float) -> None:
+        while self._markers and self._markers[0][0] < before_s:
+            _, lines = self._markers.pop(0)
+            for p, ln in lines:
+                p.removeItem(ln)
+
+
+def fit_range(plot, lo: float, hi: float) -> None:
+    """Set ``plot``'s y range to hold [lo, hi], with hysteresis: it widens at
+    once, and narrows only when the data use less than half of it."""
+    lo, hi = float(lo), float(hi)  # numpy float32 overflows in pyqtgraph's range checks
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return
+    span = hi - lo
+    if span <= 0:
+        span = abs(hi) * 0.1 or 1e-9
+    (a, b) = plot.vb.viewRange()[1]
+    if lo < a or hi > b or span < 0.5 * (b - a):
+        plot.setYRange(lo - 0.08 * span, hi + 0.08 * span, padding=0)
