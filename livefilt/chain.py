@@ -54,8 +54,11 @@ class Chain:
                 out: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         """Filter ``x`` (float64) and detect; returns (filtered block, rows)."""
         y = self.filter.process(x, out=out)
-        rows = self.detector.process(y, start_index, ref)
-        return y, rows
+        return y, self.detect(y, start_index, ref)
+
+    def detect(self, y: np.ndarray, start_index: int, ref: np.ndarray | None) -> np.ndarray:
+        """The detector rows due in an already filtered block ``y``."""
+        return self.detector.process(y, start_index, ref)
 
     def note_gap(self, frames: int) -> None:
         self.detector.note_gap(frames)

@@ -386,6 +386,7 @@ class LockIn(_Detector):
             ratio = Fraction(reference.frequency_hz) / Fraction(fs)
             self._p, self._q = ratio.numerator, ratio.denominator
             self._cycles_per_sample = float(ratio)
+            self._anchor1 = np.empty(1)
         super().__init__(spec, fs, output_every, exact_path)
 
     def reset(self) -> None:
@@ -430,10 +431,10 @@ class LockIn(_Detector):
         rows = self._row_buffer(n)
         b0, b1, a1 = self._coef
         if cycles is None:
-            frac0 = (start_index * self._p % self._q) / self._q
-            m = self._kern.mix_internal_rows(x, frac0, self._cycles_per_sample, self.phase_rad,
-                                             start_index % kernels.RESEED, b0, b1, a1, self.zi,
-                                             first, self.output_every, rows)
+            offset = start_index % kernels.ANCHOR
+            fracs = self._anchor_phases(start_index - offset, offset + n)
+            m = self._kern.mix_internal_rows(x, offset, fracs, self._cycles_per_sample, self.phase_rad, b0, b1, a1,
+                                             self.zi, first, self.output_every, rows)
         else:
             m = self._kern.mix_cycles_rows(x, cycles, self.phase_rad, b0, b1, a1, self.zi,
                                            first, self.output_every, rows)
@@ -480,6 +481,15 @@ class LockIn(_Detector):
         rows["ref_hz"] = ref_hz
         rows["locked"] = True if locked is None else locked
         return rows
+
+    def _anchor_phases(self, anchor: int, span: int) -> np.ndarray:
+        """Exact ``(k f / fs) mod 1`` at the anchors ``anchor + i ANCHOR`` in a span."""
+        count = max(1, (span - 1) // kernels.ANCHOR + 1)
+        buf = self._buffer("anchors", (count,)) if count > 1 else self._anchor1
+        p, q = self._p, self._q
+        for i in range(count):
+            buf[i] = ((anchor + i * kernels.ANCHOR) * p % q) / q
+        return buf
 
     def _internal_cycles(self, start_index: int, n: int) -> np.ndarray:
         """Reference phase in cycles, ``(k f / fs) mod 1`` at the block start

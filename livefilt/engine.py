@@ -32,6 +32,7 @@ from .config import ChainSettings, Settings, parse_chain
 from .errors import RecordingError, SettingError, SourceError
 from .record import RunWriter, new_run_folder
 from .ring import Ring
+from .sections import FilterBank
 from .source import Source, load_driver
 from .taps import Tap
 
@@ -105,7 +106,9 @@ class Engine:
         self.chains = [self._make_chain(c, i) for i, c in enumerate(self.settings.chains)]
         self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
         n_max = self.block * self.batch
-        self._x = np.zeros((len(self.chains), n_max))
+        # every chain's filter in one compiled call per block (FilterBank)
+        self._bank = FilterBank([c.filter for c in self.chains])
+        self._inputs = np.array([c.channel for c in self.chains], dtype=np.int64)
         self._y = np.zeros((len(self.chains), n_max))
         self._streams = np.zeros((src.channels + len(self.chains), n_max), dtype=np.float32)
         self.tap = None
@@ -276,7 +279,7 @@ class Engine:
                 pending, self._pending = self._pending, []
             for i, new in pending:
                 self.chains[i].retune(new)
-                self.chains[i].channel = self._channel_index(new, i)
+                self.chains[i].channel = self._inputs[i] = self._channel_index(new, i)
         st = self.stats
         if blk.dropped or blk.gaps:
             st.dropped += blk.dropped
@@ -291,12 +294,11 @@ class Engine:
             n = max(0, self._stop_at - start)
             data = data[:n]
         nch = data.shape[1]
+        ys = self._bank.process(data, self._inputs, self._y)
         rows_all = []
         for k, c in enumerate(self.chains):
-            x = self._x[k, :n]
-            x[:] = data[:, c.channel]
             ref = data[:, c.ref_channel] if c.ref_channel is not None else None
-            y, rows = c.process(x, start, ref, out=self._y[k, :n])
+            rows = c.detect(ys[k], start, ref)
             rows_all.append(rows)
             if len(rows):
                 self.latest[c.name] = rows[-1]

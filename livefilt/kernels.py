@@ -11,7 +11,9 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``mix_internal_rows(x, frac0, cycles_per_sample, phase_rad, lead, b0,
+  - ``sos_bank(sos, zi, bounds, channels, data, y)``: every chain's cascade
+    on one block of frames (n, channels) in one call.
+  - ``mix_internal_rows(x, offset, fracs, cycles_per_sample, phase_rad, b0,
     b1, a1, zi, first, every, rows)``: dual-phase mixer on an internal reference,
     then the detector's first-order output sections; returns the number of
     rows written.
@@ -29,8 +31,8 @@ The lock-in keeps every sample of its output low-pass (the sections are
 recursive, so no sample may be skipped) but stores only the rows due, at
 sample indices ``first, first + every, ...``: that is exact, where decimating
 before the low-pass would add aliasing.  The internal reference is a
-rotating phasor, re-seeded with ``cos``/``sin`` of the exact phase every
-:data:`RESEED` samples, so its error stays below about ``RESEED`` rounding
+rotating phasor, re-seeded with ``cos``/``sin`` of the exact phase at
+every multiple of :data:`RESEED` samples, so its error stays below about ``RESEED`` rounding
 steps (1e-14) while most samples cost four multiplications instead of two
 transcendental calls.
 
@@ -49,13 +51,17 @@ import logging
 import math
 import os
 
-__all__ = ["compiled", "sos_block", "mix_internal_rows", "mix_cycles_rows", "square_rows",
-           "RESEED", "NO_JIT_ENV"]
+import numpy as np
+
+__all__ = ["compiled", "sos_block", "sos_bank", "mix_internal_rows", "mix_cycles_rows",
+           "square_rows", "RESEED", "ANCHOR", "NO_JIT_ENV"]
 
 log = logging.getLogger(__name__)
 
 #: Samples between exact re-seeds of the internal reference phasor.
 RESEED = 64
+#: Samples between the anchors whose exact phase the caller supplies.
+ANCHOR = 4096
 #: Environment variable that forces the scipy path when set to "1".
 NO_JIT_ENV = "LIVEFILT_NO_JIT"
 
@@ -125,19 +131,45 @@ def sos_block(sos, zi, x, y):
 
 
 @_jit
-def mix_internal_rows(x, frac0, cps, phase, lead, b0, b1, a1, zi, first, every, rows):
+def sos_bank(sos, zi, bounds, channels, data, y):
+    """Several cascades on one block of frames, in one call.
+
+    Cascade ``c`` is sections ``bounds[c]:bounds[c + 1]`` of ``sos``/``zi``
+    and reads column ``channels[c]`` of ``data`` (n, channels), any float
+    type, widened to float64 as ``astype`` would; it writes ``y[c, :n]``.
+    Same loop and order of terms as :func:`sos_block`.
+    """
+    n = data.shape[0]
+    for c in range(channels.shape[0]):
+        s0 = bounds[c]
+        s1 = bounds[c + 1]
+        ch = channels[c]
+        for k in range(n):
+            v = np.float64(data[k, ch])
+            for s in range(s0, s1):
+                w = sos[s, 0] * v + zi[s, 0]
+                zi[s, 0] = sos[s, 1] * v - sos[s, 4] * w + zi[s, 1]
+                zi[s, 1] = sos[s, 2] * v - sos[s, 5] * w
+                v = w
+            y[c, k] = v
+
+
+@_jit
+def mix_internal_rows(x, offset, fracs, cps, phase, b0, b1, a1, zi, first, every, rows):
     """Internal-reference lock-in over one block; rows (2, m) written, m returned.
 
-    The reference phase ``j`` samples after the block start is
-    ``2 pi (j cps + frac0) + phase`` (the straightforward path's formula).
-    It is evaluated exactly at the sample indices that are multiples of
-    :data:`RESEED` (``lead`` = block start index mod RESEED) and carried
-    between them by phasor rotation; so the phasor at a sample does not
-    depend on how the stream was split into blocks.
+    The block starts ``offset`` samples after an anchor, a sample index that
+    is a multiple of :data:`ANCHOR`; ``fracs[i]`` is the exact reference phase
+    (cycles, mod 1) at the ``i``-th anchor from there.  The phase ``j``
+    samples after an anchor is ``2 pi (j cps + frac) + phase``, evaluated at
+    every multiple of :data:`RESEED` and carried between by phasor rotation,
+    so the phasor at a sample depends on its index only, not on the split
+    into blocks.
     """
     rot_c = math.cos(_TWO_PI * cps)
     rot_s = math.sin(_TWO_PI * cps)
-    theta = (-lead * cps + frac0) * _TWO_PI + phase
+    lead = offset % RESEED
+    theta = ((offset - lead) * cps + fracs[0]) * _TWO_PI + phase
     c = math.cos(theta)
     s = math.sin(theta)
     for _ in range(lead):
@@ -145,8 +177,10 @@ def mix_internal_rows(x, frac0, cps, phase, lead, b0, b1, a1, zi, first, every, 
     m = 0
     due = first
     for k in range(x.shape[0]):
-        if (k + lead) % RESEED == 0:
-            theta = (k * cps + frac0) * _TWO_PI + phase
+        pos = offset + k
+        off = pos % ANCHOR
+        if off % RESEED == 0:
+            theta = (off * cps + fracs[pos // ANCHOR]) * _TWO_PI + phase
             c = math.cos(theta)
             s = math.sin(theta)
         xk = x[k]
@@ -215,6 +249,7 @@ class _Kernels:
 
     def __init__(self):
         self.sos_block = sos_block
+        self.sos_bank = sos_bank
         self.mix_internal_rows = mix_internal_rows
         self.mix_cycles_rows = mix_cycles_rows
         self.square_rows = square_rows
@@ -224,14 +259,16 @@ def _build() -> _Kernels:
     """Compile (or load from the cache) every kernel with the types used."""
     if numba is None:
         raise _IMPORT_ERROR
-    import numpy as np
-
     x = np.zeros(4)
     zi3 = np.zeros((1, 2, 1))
     rows = np.zeros((2, 4))
     sos_block(np.array([[1.0, 0, 0, 1, 0, 0]]), np.zeros((1, 2)), x, np.zeros(4))
     sos_block(np.array([[1.0, 0, 0, 1, 0, 0]]), np.zeros((1, 2)), x[::2], np.zeros(2))
-    mix_internal_rows(x, 0.0, 0.1, 0.0, 3, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
+    one = np.array([[1.0, 0, 0, 1, 0, 0]])
+    for dtype in (np.float32, np.float64):
+        sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.array([1]), np.zeros((4, 2), dtype),
+                 np.zeros((1, 4)))
+    mix_internal_rows(x, 4094, np.zeros(2), 0.1, 0.0, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     mix_cycles_rows(x, x, 0.0, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     square_rows(x, 0.5, 0.1, -0.4, zi3, 0, 1, rows)
     return _Kernels()

@@ -15,6 +15,11 @@ scipy's ``sosfilt``, so the samples agree to the last bit or so); when the
 compiled kernels are unavailable (:func:`livefilt.kernels.compiled` returns
 None, e.g. with ``LIVEFILT_NO_JIT=1``) it calls :func:`scipy.signal.sosfilt`.
 The choice is made when the filter is built.
+
+:class:`FilterBank` runs several filters (the engine's chains, each on its
+own input column) on one block of frames in a single compiled call
+(:func:`livefilt.kernels.sos_bank`): the filters' ``.sos`` and ``.zi``
+become views into the bank's packed arrays, so their state stays theirs.
 """
 
 from __future__ import annotations
@@ -26,7 +31,7 @@ from scipy import signal
 
 from . import kernels
 
-__all__ = ["SosFilter"]
+__all__ = ["SosFilter", "FilterBank"]
 
 log = logging.getLogger(__name__)
 
@@ -139,6 +144,61 @@ class SosFilter:
         The running state is not touched.
         """
         return signal.sosfilt(self.sos, np.ones(int(n)))
+
+
+class FilterBank:
+    """Several :class:`SosFilter` run on one block of frames in one call.
+
+    Parameters
+    ----------
+    filters : sequence of SosFilter
+        Their ``.sos`` and ``.zi`` are replaced by views into the bank's
+        packed arrays (values kept); a filter that reallocates them (a
+        retune to another number of sections) is packed again at the next
+        :meth:`process`.
+    """
+
+    def __init__(self, filters):
+        self.filters = list(filters)
+        k = kernels.compiled()
+        self._kernel = k.sos_bank if k is not None else None
+        self._pack()
+
+    def process(self, data: np.ndarray, channels: np.ndarray, out: np.ndarray) -> np.ndarray:
+        """Filter ``data[:, channels[i]]`` with filter ``i`` into ``out[i, :n]``.
+
+        Parameters
+        ----------
+        data : ndarray, shape (n, columns), float32 or float64, C-contiguous
+        channels : ndarray of int64, one column per filter
+        out : ndarray, shape (filters, >= n), float64, C-contiguous
+
+        Returns
+        -------
+        ndarray, the view ``out[:, :n]``
+        """
+        n = data.shape[0]
+        for f in self.filters:
+            if f.zi.base is not self.zi or f.sos.base is not self.sos:
+                self._pack()
+                break
+        if self._kernel is None or n == 0:
+            for i, f in enumerate(self.filters):
+                f.process(data[:, channels[i]], out=out[i])
+            return out[:, :n]
+        self._kernel(self.sos, self.zi, self.bounds, channels, data, out)
+        last = data[n - 1]
+        for i, f in enumerate(self.filters):
+            f._last = float(last[channels[i]])
+        return out[:, :n]
+
+    def _pack(self) -> None:
+        sizes = [f.sections for f in self.filters]
+        self.bounds = np.concatenate(([0], np.cumsum(sizes))).astype(np.int64)
+        self.sos = np.concatenate([f.sos for f in self.filters])
+        self.zi = np.concatenate([f.zi for f in self.filters])
+        for f, a, b in zip(self.filters, self.bounds[:-1], self.bounds[1:]):
+            f.sos, f.zi = self.sos[a:b], self.zi[a:b]
 
 
 def _as_sos(sos: np.ndarray) -> np.ndarray:

@@ -1,0 +1,329 @@
+"""``livefilt speed``: does this machine keep up with this config?
+
+API map
+-------
+- :func:`run_speed` (the CLI entry): measures, prints the table, optionally
+  writes it as JSON; returns the exit status (0; a missed target is a
+  result, not an error).
+- :func:`measure` returns the rows (list of dict) without printing.
+
+Measures (each row: measure, value, unit, target, pass)
+-------------------------------------------------------
+- ``startup``: a fresh interpreter imports livefilt, loads the compiled
+  kernels from the cache, builds the engine on the simulated bench and
+  processes its first block (s; target < 2).  Run twice, the second timed,
+  so the first fills the cache: this is the warm-cache start-up and it
+  includes any JIT compile; the timings below exclude it (warm-up runs).
+- ``filter ratio``: for every chain, at every block size in
+  :data:`BLOCKS`, the throughput of :class:`~livefilt.sections.SosFilter`
+  fed block by block (as the engine does) divided by the throughput of
+  scipy's whole-array ``sosfilt`` on the same samples, timed alternately
+  in the same run (median of the repetitions; targets >= 0.5 at 64 and
+  >= 0.8 at 256 samples).
+- ``filter exactness``: block path against whole-array ``sosfilt``, largest
+  difference relative to the largest output (target <= 1e-12).
+- ``lock-in exactness``: compiled lock-in against ``exact_path=True`` on
+  the chain's output of simulated bench data, largest I/Q difference
+  relative to the largest amplitude (target <= 1e-9).
+- ``pipeline``: the engine on the simulated bench (photodiode + LED
+  channels) at pace "fast", all chains, recorder writing to a temporary
+  folder, headless: acquired time / engine processing time (target >= 20
+  at 192 kHz; the engine's own time, as a core would see it) and acquired
+  time / wall time (information: it includes the simulator generating the
+  samples on another thread).
+- ``allocations``: traced Python heap (tracemalloc) per engine block in
+  steady state (ring read, every chain, no recorder): median peak bytes
+  above the level before the block, and net growth over all blocks
+  (target: below one block of samples, 8 bytes x block).
+- ``memory``: resident set growth over a simulated hour at the config's
+  rate processed as fast as possible, recorder on (MB; target < 5).  With
+  ``--quick`` the run is scaled down to 60 s and the row says so.
+
+Timings are medians of several repetitions with warm-up; compare ratios,
+which are taken within one run, rather than absolute rates on a shared
+machine.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import platform
+import statistics
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import tracemalloc
+
+import numpy as np
+from scipy import signal
+
+from .config import demo_config, load_config, parse_config
+from .design import chain_sos
+from .detect import make_detector
+from .engine import Engine, build_source
+from .sections import SosFilter
+
+__all__ = ["run_speed", "measure", "BLOCKS"]
+
+log = logging.getLogger(__name__)
+
+#: Block sizes of the filter-ratio measure, samples.
+BLOCKS = (64, 256, 1024, 4096)
+_RATIO_TARGETS = {64: 0.5, 256: 0.8}
+_DEMO_RATES = (48000.0, 192000.0)
+
+
+def run_speed(args) -> int:
+    """Measure, print the table, write JSON when ``args.json`` is set."""
+    settings = load_config(args.config) if getattr(args, "config", None) else None
+    quick = bool(getattr(args, "quick", False))
+    rows = measure(settings, quick)
+    print(_table(rows))
+    missed = [r for r in rows if r["pass"] is False]
+    print(f"{len(missed)} target(s) missed" if missed else "every target met")
+    if getattr(args, "json", None):
+        doc = {"livefilt_speed": 1, "quick": quick, "config": getattr(args, "config", None),
+               "machine": {"python": platform.python_version(), "cpus": os.cpu_count(),
+                           "platform": platform.platform(), "numpy": np.__version__},
+               "all_met": not missed, "measures": rows}
+        with open(args.json, "w", encoding="utf-8") as f:
+            json.dump(doc, f, indent=2, allow_nan=False, default=_plain)
+    return 0
+
+
+def measure(settings=None, quick: bool = False) -> list[dict]:
+    """Every measure for ``settings`` (None: the demo chains at 48 and 192 kHz)."""
+    variants = ([settings] if settings is not None
+                else [_with_rate(demo_config(), rate) for rate in _DEMO_RATES])
+    benches = [_bench(s) for s in variants]
+    rows = [_startup(benches[-1])]
+    for bench in benches:
+        rows += _filter_rows(bench, quick)
+        rows.append(_lockin_exactness(bench, quick))
+    for bench in benches:
+        rows += _pipeline(bench, quick)
+    rows.append(_allocations(benches[-1]))
+    rows.append(_memory(benches[0] if settings is None else benches[-1], quick))
+    return rows
+
+
+# -- measures ---------------------------------------------------------------
+def _startup(bench) -> dict:
+    code = ("import sys, json; from livefilt.config import parse_config; "
+            "from livefilt.engine import Engine; "
+            "e = Engine(parse_config(json.loads(sys.argv[1]))); e.run(e.block / e.rate_hz)")
+    cmd = [sys.executable, "-c", code, json.dumps(bench.to_mapping())]
+    took = []
+    for _ in range(2):  # the first fills the kernel cache
+        t0 = time.perf_counter()
+        subprocess.run(cmd, check=True, capture_output=True)
+        took.append(time.perf_counter() - t0)
+    return _row("start-up to first block, warm cache", took[-1], "s", "< 2", took[-1] < 2.0)
+
+
+def _filter_rows(bench, quick: bool) -> list[dict]:
+    fs = bench.source.rate_hz
+    n = 2 ** 17 if quick else 2 ** 19
+    reps = 3 if quick else 7
+    x = np.random.default_rng(1057).standard_normal(n)
+    rows = []
+    for chain in bench.chains:
+        sos = chain_sos(chain.stages, fs)
+        label = f"chain {chain.name} ({sos.shape[0]} sections) at {fs / 1000:g} kHz"
+        want = signal.sosfilt(sos, x)
+        f = SosFilter(sos)
+        y = np.empty(n)
+        for block in BLOCKS:
+            def blocks(block=block):
+                f.reset()
+                for i in range(0, n, block):
+                    f.process(x[i:i + block], out=y[i:i + block])
+
+            def whole():
+                signal.sosfilt(sos, x)
+
+            t_whole, t_block = _alternate(whole, blocks, reps)
+            ratio = t_whole / t_block
+            target = _RATIO_TARGETS.get(block)
+            rows.append(_row(f"{label}: {block}-sample blocks / whole-array sosfilt", ratio, "x",
+                             f">= {target}" if target else "-",
+                             None if target is None else ratio >= target,
+                             samples_per_s=n / t_block))
+        err = float(np.max(np.abs(y - want)) / np.max(np.abs(want)))
+        rows.append(_row(f"{label}: blocks vs whole-array sosfilt, relative difference", err,
+                         "", "<= 1e-12", err <= 1e-12))
+    return rows
+
+
+def _lockin_exactness(bench, quick: bool) -> dict:
+    fs = bench.source.rate_hz
+    chain = bench.chains[0]
+    n = int(fs * (0.5 if quick else 2.0))
+    x = _bench_samples(bench, n)[:, chain.input if isinstance(chain.input, int) else 0]
+    y = signal.sosfilt(chain_sos(chain.stages, fs), x.astype(np.float64))
+    every = max(1, int(round(bench.output.interval_s * fs / 10)))  # 10x the rows: more to compare
+    got = []
+    for exact in (False, True):
+        det = make_detector(chain.detector, bench.reference, fs, every, exact_path=exact)
+        got.append(np.concatenate([det.process(y[i:i + 256], i) for i in range(0, n, 256)]))
+    fast, ref = got
+    scale = np.max(np.abs(ref["amplitude"]))
+    err = max(float(np.max(np.abs(fast[k] - ref[k]))) for k in ("in_phase", "quadrature")) / scale
+    return _row(f"{chain.detector.type} of chain {chain.name} at {fs / 1000:g} kHz: "
+                "compiled vs straightforward, relative difference", err, "", "<= 1e-9",
+                err <= 1e-9)
+
+
+def _pipeline(bench, quick: bool) -> list[dict]:
+    fs = bench.source.rate_hz
+    seconds = 5.0 if quick else 30.0
+    busy, wall = [], []
+    for _ in range(1 if quick else 3):
+        engine = Engine(bench)
+        with tempfile.TemporaryDirectory() as tmp:
+            engine.start_recording(tmp)
+            t0 = time.perf_counter()
+            engine.run(seconds)
+            wall.append(time.perf_counter() - t0)
+        if engine.error is not None:
+            raise engine.error
+        acquired = engine.stats.frames / fs
+        busy.append(acquired / engine.stats.busy_s)
+        wall[-1] = acquired / wall[-1]
+    what = (f"pipeline at {fs / 1000:g} kHz ({len(bench.chains)} chains, "
+            f"{bench.source.block}-sample blocks, recorder on)")
+    need = 20.0 if fs >= 192000 else None
+    factor = statistics.median(busy)
+    return [_row(f"{what}: real-time factor, engine processing", factor, "x",
+                 f">= {need:g}" if need else "-", None if need is None else factor >= need),
+            _row(f"{what}: real-time factor, wall (simulator included)",
+                 statistics.median(wall), "x", "-", None)]
+
+
+def _allocations(bench) -> dict:
+    engine = Engine(bench, batch=1)
+    block = engine.block
+    n_blocks = 400
+    data = _bench_samples(bench, block * (n_blocks + 100))
+    try:
+        for i in range(100):  # warm-up: buffers sized, noise windows growing
+            engine.ring.write(data[i * block:(i + 1) * block])
+            engine.step(0)
+        tracemalloc.start()
+        start = tracemalloc.get_traced_memory()[0]
+        peaks = []
+        for i in range(100, 100 + n_blocks):
+            engine.ring.write(data[i * block:(i + 1) * block])
+            before = tracemalloc.get_traced_memory()[0]
+            tracemalloc.reset_peak()
+            engine.step(0)
+            peaks.append(tracemalloc.get_traced_memory()[1] - before)
+        growth = tracemalloc.get_traced_memory()[0] - start
+        tracemalloc.stop()
+    finally:
+        engine.source.stop()
+    median = float(statistics.median(peaks))
+    bound = 8 * block
+    return _row(f"allocations per {block}-sample block at {engine.rate_hz / 1000:g} kHz "
+                f"(median peak; net growth {growth} B over {n_blocks} blocks)", median, "B",
+                f"< {bound}", median < bound and growth < bound,
+                growth_bytes=int(growth), max_peak_bytes=int(max(peaks)))
+
+
+def _memory(bench, quick: bool) -> dict:
+    fs = bench.source.rate_hz
+    seconds = 60.0 if quick else 3600.0
+    engine = Engine(bench)
+    samples = []
+    with tempfile.TemporaryDirectory() as tmp:
+        engine.start_recording(tmp)
+        engine.start(seconds)
+        while not engine.finished.wait(0.1):
+            samples.append((engine.stats.index, _rss_bytes()))
+        engine.stop()
+    samples.append((engine.stats.index, _rss_bytes()))
+    if engine.error is not None:
+        raise engine.error
+    # baseline after the first 5 % of the run: buffers and noise windows full
+    warm = [rss for index, rss in samples if index >= 0.05 * seconds * fs] or samples[-1:]
+    growth = (max(warm) - warm[0]) / 1e6
+    scale = " (--quick: 60 s, not 1 h)" if quick else ""
+    return _row(f"resident memory growth, {seconds:g} s simulated at {fs / 1000:g} kHz "
+                f"as fast as possible, recorder on{scale}", growth, "MB", "< 5", growth < 5.0)
+
+
+# -- private helpers --------------------------------------------------------
+def _with_rate(settings, rate: float):
+    doc = settings.to_mapping()
+    doc["source"]["rate_hz"] = rate
+    return parse_config(doc, settings.origin)
+
+
+def _bench(settings):
+    """The settings on the simulated bench at the same rate and block, pace fast."""
+    doc = settings.to_mapping()
+    src = settings.source
+    doc["source"] = {"driver": "simulated", "rate_hz": src.rate_hz, "block": src.block,
+                     "pace": "fast"}
+    ref = settings.reference
+    if ref is not None and ref.frequency_hz is not None and ref.frequency_hz < src.rate_hz / 4:
+        doc["source"]["led_hz"] = ref.frequency_hz
+    return parse_config(doc, settings.origin)
+
+
+def _bench_samples(bench, n: int) -> np.ndarray:
+    """``n`` frames of the simulated bench (photodiode, LED), float32."""
+    return build_source(bench).generate(0, n)
+
+
+def _alternate(first, second, reps: int) -> tuple[float, float]:
+    """Median times of two functions run alternately after one warm-up each."""
+    first(), second()
+    a, b = [], []
+    for _ in range(reps):
+        for fn, out in ((first, a), (second, b)):
+            t0 = time.perf_counter()
+            fn()
+            out.append(time.perf_counter() - t0)
+    return statistics.median(a), statistics.median(b)
+
+
+def _rss_bytes() -> int:
+    try:
+        with open("/proc/self/statm") as f:
+            return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE")
+    except OSError:  # not Linux: peak resident size instead
+        import resource
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        return peak if sys.platform == "darwin" else peak * 1024
+
+
+def _row(measure: str, value: float, unit: str, target: str, ok, **extra) -> dict:
+    row = {"measure": measure, "value": float(value), "unit": unit, "target": target,
+           "pass": ok if ok is None else bool(ok)}
+    row.update(extra)
+    return row
+
+
+def _table(rows: list[dict]) -> str:
+    def fmt(r):
+        v = r["value"]
+        text = f"{v:.3g}" if (abs(v) < 1e-3 or abs(v) >= 1e4) and v != 0 else f"{v:.3f}"
+        return f"{text} {r['unit']}".strip()
+
+    cells = [(r["measure"], fmt(r), r["target"],
+              "-" if r["pass"] is None else ("pass" if r["pass"] else "FAIL")) for r in rows]
+    head = ("measure", "value", "target", "result")
+    widths = [max(len(c[i]) for c in cells + [head]) for i in range(4)]
+    line = "  ".join("{:<%d}" % w for w in widths)
+    out = [line.format(*head), line.format(*("-" * w for w in widths))]
+    out += [line.format(*c) for c in cells]
+    return "\n".join(out)
+
+
+def _plain(value):
+    return value.item() if hasattr(value, "item") else str(value)
