@@ -1,0 +1,189 @@
+"""Compiled kernels against scipy.signal and against the straightforward paths.
+
+Reference library: scipy.signal (whole-array sosfilt); the straightforward
+numpy/scipy detector path (``exact_path=True``) and the scipy fallback
+(``LIVEFILT_NO_JIT=1``) are the references for the compiled detectors.
+"""
+
+import logging
+import tracemalloc
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from livefilt import kernels
+from livefilt.config import demo_config, parse_config
+from livefilt.detect import DetectorSpec, ReferenceSpec, make_detector
+from livefilt.engine import Engine
+from livefilt.sections import FilterBank, SosFilter
+
+FS = 48000.0
+pytestmark = pytest.mark.skipif(kernels.compiled() is None, reason="numba kernels unavailable")
+
+
+def _splits(n, seed):
+    rng = np.random.default_rng(seed)
+    cuts = np.cumsum(rng.integers(1, 700, size=n // 50))
+    return [c for c in cuts if c < n]
+
+
+def _lockin(exact, **ref):
+    ref.setdefault("frequency_hz", 1370.3)
+    spec = DetectorSpec.from_mapping({"time_constant_s": 0.005, "slope_db_oct": 24,
+                                      "noise_window_s": 0.05}, FS)
+    return make_detector(spec, ReferenceSpec.from_mapping(ref, FS, 2), FS, 7, exact_path=exact)
+
+
+def _feed(det, x, cuts, ref=None):
+    rows, i = [], 0
+    for j in list(cuts) + [len(x)]:
+        rows.append(det.process(x[i:j], i, None if ref is None else ref[i:j]))
+        i = j
+    return np.concatenate(rows)
+
+
+N = 24000
+_rng = np.random.default_rng(11)
+X = 0.4 * np.cos(2 * np.pi * 1370.3 * np.arange(N) / FS + 0.3) + _rng.normal(0, 0.2, N)
+REF = np.sign(np.cos(2 * np.pi * 1370.3 * np.arange(N) / FS))
+
+
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_sos_kernel_equals_whole_array_sosfilt(seed):
+    # source: scipy.signal.sosfilt on the whole array (reference library)
+    sos = signal.ellip(10, 0.5, 60, [0.05, 0.12], btype="bandpass", output="sos")
+    x = np.random.default_rng(seed).standard_normal(5000)
+    f = SosFilter(sos)
+    got = np.concatenate([f.process(b) for b in np.split(x, _splits(x.size, seed))])
+    want = signal.sosfilt(sos, x)
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * np.max(np.abs(want)))
+
+
+def test_sos_kernel_writes_strided_out_and_keeps_state_arrays():
+    sos = signal.butter(4, 0.1, output="sos")
+    x = np.random.default_rng(4).standard_normal(300)
+    f = SosFilter(sos)
+    zi = f.zi
+    out = np.zeros((300, 2))[:, 0]  # strided
+    y = f.process(x, out=out)
+    assert np.shares_memory(y, out) and f.zi is zi
+    np.testing.assert_allclose(out, signal.sosfilt(sos, x), rtol=1e-12, atol=1e-15)
+
+
+def test_filter_bank_equals_sosfilt_per_chain_and_repacks_after_retune():
+    # source: scipy.signal.sosfilt per column (reference library)
+    a = signal.butter(6, [0.02, 0.05], btype="bandpass", output="sos")
+    b = signal.butter(2, 0.2, output="sos")
+    frames = np.random.default_rng(5).standard_normal((6000, 2)).astype(np.float32)
+    fa, fb = SosFilter(a), SosFilter(b)
+    bank = FilterBank([fa, fb])
+    inputs = np.array([1, 0], dtype=np.int64)
+    out = np.empty((2, 6000))
+    for i in range(0, 6000, 256):
+        bank.process(frames[i:i + 256], inputs, out[:, i:i + 256])
+    x1, x0 = frames[:, 1].astype(np.float64), frames[:, 0].astype(np.float64)
+    np.testing.assert_allclose(out[0], signal.sosfilt(a, x1), rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(out[1], signal.sosfilt(b, x0), rtol=1e-12, atol=1e-14)
+    # a retune to more sections reallocates the filter's arrays: the bank packs again
+    fb.retune(signal.butter(6, 0.2, output="sos"))
+    state = fb.zi.copy()
+    more = frames[:500]
+    bank.process(more, inputs, out)
+    ref = SosFilter(fb.sos)
+    ref.zi[...] = state
+    np.testing.assert_allclose(out[1, :500], ref.process(more[:, 0]), rtol=1e-12, atol=1e-14)
+    assert fb.zi.base is bank.zi and fa.sos.base is bank.sos
+
+
+@pytest.mark.parametrize("measured", [False, True])
+def test_lockin_compiled_equals_straightforward(measured):
+    # reference: the straightforward full-rate numpy/scipy path (exact_path=True)
+    ref_kw = {"channel": 1} if measured else {}
+    cuts = _splits(N, 8)
+    fast = _feed(_lockin(False, **ref_kw), X, cuts, REF)
+    exact = _feed(_lockin(True, **ref_kw), X, cuts, REF)
+    scale = np.max(np.abs(exact["amplitude"]))
+    np.testing.assert_array_equal(fast["index"], exact["index"])
+    np.testing.assert_array_equal(fast["locked"], exact["locked"])
+    for name in ("in_phase", "quadrature", "amplitude", "noise"):
+        np.testing.assert_allclose(fast[name], exact[name], rtol=1e-9, atol=1e-9 * scale,
+                                   equal_nan=True)
+
+
+def test_rms_compiled_equals_straightforward():
+    spec = DetectorSpec.from_mapping({"type": "rms", "time_constant_s": 0.002,
+                                      "noise_window_s": 0.05}, FS)
+    cuts = _splits(N, 9)
+    fast = _feed(make_detector(spec, None, FS, 5), X, cuts)
+    exact = _feed(make_detector(spec, None, FS, 5, exact_path=True), X, cuts)
+    for name in ("amplitude", "noise", "snr_db"):
+        np.testing.assert_allclose(fast[name], exact[name], rtol=1e-9, atol=1e-12, equal_nan=True)
+
+
+def test_compiled_lockin_rows_do_not_depend_on_block_split():
+    # the phasor is anchored to the sample index: any split gives the same bits
+    one = _lockin(False).process(X, 0)
+    split = _feed(_lockin(False), X, _splits(N, 10))
+    for name in ("in_phase", "quadrature"):
+        np.testing.assert_array_equal(one[name], split[name])
+
+
+def test_no_jit_env_selects_scipy_path_with_one_warning(monkeypatch, caplog):
+    monkeypatch.setenv(kernels.NO_JIT_ENV, "1")
+    monkeypatch.setitem(kernels._state, "warned", False)
+    with caplog.at_level(logging.WARNING, logger="livefilt.kernels"):
+        assert kernels.compiled() is None
+        f = SosFilter(signal.butter(2, 0.1, output="sos"))
+        assert kernels.compiled() is None
+    assert f._kernel is None and _lockin(False)._kern is None
+    assert sum("scipy path" in r.message for r in caplog.records) == 1
+
+
+def _demo(block=256):
+    d = demo_config().to_mapping()
+    d["source"].update(pace="fast", block=block, rate_hz=96000)
+    return parse_config(d)
+
+
+def _engine_rows(duration):
+    e = Engine(_demo())
+    rows = {c.name: [] for c in e.chains}
+    e.listeners.append(lambda eng, s, raw, ys, rs: [rows[c.name].append(r)
+                                                    for c, r in zip(eng.chains, rs)])
+    e.run(duration)
+    return {k: np.concatenate(v) for k, v in rows.items()}
+
+
+def test_engine_compiled_equals_scipy_fallback(monkeypatch):
+    # reference: the same engine on the scipy fallback (LIVEFILT_NO_JIT=1)
+    fast = _engine_rows(1.0)
+    monkeypatch.setenv(kernels.NO_JIT_ENV, "1")
+    slow = _engine_rows(1.0)
+    for name in fast:
+        scale = np.max(np.abs(slow[name]["amplitude"]))
+        for f in ("in_phase", "quadrature", "amplitude"):
+            np.testing.assert_allclose(fast[name][f], slow[name][f], rtol=1e-9, atol=1e-9 * scale)
+
+
+def test_steady_state_blocks_allocate_no_block_sized_buffers():
+    e = Engine(_demo(), batch=1)
+    data = e.source.generate(0, 256 * 300)
+    try:
+        for i in range(300):
+            e.ring.write(data[i * 256:(i + 1) * 256])
+            if i == 100:
+                tracemalloc.start()
+                peaks = []
+            if i > 100:
+                before = tracemalloc.get_traced_memory()[0]
+                tracemalloc.reset_peak()
+            e.step(0)
+            if i > 100:
+                peaks.append(tracemalloc.get_traced_memory()[1] - before)
+        tracemalloc.stop()
+    finally:
+        e.source.stop()
+    # a block of samples is 2 KiB in float64: no step may allocate one
+    assert np.median(peaks) < 2048
+    assert max(peaks) < 64 * 1024  # blocks with rows: small row arrays only
