@@ -11,7 +11,7 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``sos_bank(sos, zi, bounds, channels, data, y)``: every chain's cascade
+  - ``sos_bank(sos, zi, bounds, channels, data, y, last)``: every chain's cascade
     on one block of frames (n, channels) in one call.
   - ``mix_internal_rows(x, offset, fracs, cycles_per_sample, phase_rad, b0,
     b1, a1, zi, first, every, rows)``: dual-phase mixer on an internal reference,
@@ -131,12 +131,13 @@ def sos_block(sos, zi, x, y):
 
 
 @_jit
-def sos_bank(sos, zi, bounds, channels, data, y):
+def sos_bank(sos, zi, bounds, channels, data, y, last):
     """Several cascades on one block of frames, in one call.
 
     Cascade ``c`` is sections ``bounds[c]:bounds[c + 1]`` of ``sos``/``zi``
     and reads column ``channels[c]`` of ``data`` (n, channels), any float
-    type, widened to float64 as ``astype`` would; it writes ``y[c, :n]``.
+    type, widened to float64 as ``astype`` would; it writes ``y[c, :n]``
+    and its last input sample to ``last[c]``.
     Same loop and order of terms as :func:`sos_block`.
     """
     n = data.shape[0]
@@ -152,6 +153,8 @@ def sos_bank(sos, zi, bounds, channels, data, y):
                 zi[s, 1] = sos[s, 2] * v - sos[s, 5] * w
                 v = w
             y[c, k] = v
+        if n > 0:
+            last[c] = data[n - 1, ch]
 
 
 @_jit
@@ -267,7 +270,7 @@ def _build() -> _Kernels:
     one = np.array([[1.0, 0, 0, 1, 0, 0]])
     sos_block(one, np.zeros((1, 2)), x, np.zeros(4))
     sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.array([1]),
-             np.zeros((4, 2), np.float32), np.zeros((1, 4)))
+             np.zeros((4, 2), np.float32), np.zeros((1, 4)), np.zeros(1))
     mix_internal_rows(x, 4094, np.zeros(2), 0.1, 0.0, 0.5, 0.1, -0.4, np.zeros((1, 2, 1)), 0, 1,
                       np.zeros((2, 4)))
     return _Kernels()

@@ -55,9 +55,20 @@ class SosFilter:
     def __init__(self, sos: np.ndarray):
         self.sos = _as_sos(sos)
         self.zi = np.zeros((self.sos.shape[0], 2))
-        self._last = 0.0  # last input sample seen, for retune
+        # last input sample seen, for retune: a slot of an array, so that a
+        # FilterBank's kernel can keep it without a Python call per block
+        self._last_box, self._last_at = np.zeros(1), 0
+        self._bank: FilterBank | None = None
         k = kernels.compiled()
         self._kernel = k.sos_block if k is not None else None
+
+    @property
+    def _last(self) -> float:
+        return float(self._last_box[self._last_at])
+
+    @_last.setter
+    def _last(self, value: float) -> None:
+        self._last_box[self._last_at] = value
 
     @property
     def sections(self) -> int:
@@ -136,6 +147,8 @@ class SosFilter:
                       self.sections, new.shape[0])
             self.sos = new
             self.zi = np.zeros((new.shape[0], 2))
+            if self._bank is not None:
+                self._bank._pack()
         self.settle(self._last)
 
     def step_response(self, n: int) -> np.ndarray:
@@ -153,13 +166,14 @@ class FilterBank:
     ----------
     filters : sequence of SosFilter
         Their ``.sos`` and ``.zi`` are replaced by views into the bank's
-        packed arrays (values kept); a filter that reallocates them (a
-        retune to another number of sections) is packed again at the next
-        :meth:`process`.
+        packed arrays (values kept); a retune to another number of sections
+        packs the bank again.
     """
 
     def __init__(self, filters):
         self.filters = list(filters)
+        if any(f._bank is not None for f in self.filters):
+            raise ValueError("a filter belongs to one FilterBank at most")
         k = kernels.compiled()
         self._kernel = k.sos_bank if k is not None else None
         self._pack()
@@ -178,27 +192,24 @@ class FilterBank:
         ndarray, the view ``out[:, :n]``
         """
         n = data.shape[0]
-        for f in self.filters:
-            if f.zi.base is not self.zi or f.sos.base is not self.sos:
-                self._pack()
-                break
         if self._kernel is None or n == 0:
             for i, f in enumerate(self.filters):
                 f.process(data[:, channels[i]], out=out[i])
-            return out[:, :n]
-        self._kernel(self.sos, self.zi, self.bounds, channels, data, out)
-        last = data[n - 1]
-        for i, f in enumerate(self.filters):
-            f._last = float(last[channels[i]])
+        else:
+            self._kernel(self.sos, self.zi, self.bounds, channels, data, out, self.last)
         return out[:, :n]
 
     def _pack(self) -> None:
+        """Gather the filters' arrays into the bank's and make theirs views."""
         sizes = [f.sections for f in self.filters]
         self.bounds = np.concatenate(([0], np.cumsum(sizes))).astype(np.int64)
         self.sos = np.concatenate([f.sos for f in self.filters])
         self.zi = np.concatenate([f.zi for f in self.filters])
-        for f, a, b in zip(self.filters, self.bounds[:-1], self.bounds[1:]):
+        last = np.array([f._last for f in self.filters])
+        self.last = last
+        for i, (f, a, b) in enumerate(zip(self.filters, self.bounds[:-1], self.bounds[1:])):
             f.sos, f.zi = self.sos[a:b], self.zi[a:b]
+            f._last_box, f._last_at, f._bank = last, i, self
 
 
 def _as_sos(sos: np.ndarray) -> np.ndarray:
