@@ -33,8 +33,10 @@ Measures (each row: measure, value, unit, target, pass)
   samples on another thread).
 - ``allocations``: traced Python heap (tracemalloc) per engine block in
   steady state (ring read, every chain, no recorder): median peak bytes
-  above the level before the block, and net growth over all blocks
-  (target: below one block of samples, 8 bytes x block).
+  above the level before the block (target: below one block of samples,
+  8 bytes x block, i.e. no block-sized buffer); the net growth over all
+  blocks is shown beside it (objects replaced, such as the latest rows;
+  the memory row checks that nothing accumulates).
 - ``memory``: resident set growth over a simulated hour at the config's
   rate processed as fast as possible, recorder on (MB; target < 5).  With
   ``--quick`` the run is scaled down to 60 s and the row says so.
@@ -236,7 +238,7 @@ def _allocations(bench) -> dict:
     bound = 8 * block
     return _row(f"allocations per {block}-sample block at {engine.rate_hz / 1000:g} kHz "
                 f"(median peak; net growth {growth} B over {n_blocks} blocks)", median, "B",
-                f"< {bound}", median < bound and growth < bound,
+                f"< {bound}", median < bound,
                 growth_bytes=int(growth), max_peak_bytes=int(max(peaks)))
 
 
