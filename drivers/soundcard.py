@@ -62,7 +62,8 @@ pseudo-random +-amplitude burst of 4096 samples (after 0.2 s of silence, then
 every 0.49 s) and finds each on ``loopback_channel`` by cross-correlation:
 the card's output-to-input delay ``D`` in whole samples (searched up to
 0.4 s).  Two bursts in a row must give the same ``D`` (within one frame; up to
-four bursts are played), because a stream that is still settling can shift
+four bursts are played) with no device flag (underflow, overflow) from the
+first burst on, because a stream that is still settling or glitches shifts
 between them.  The phase of the loop at the drive frequency with ``D`` taken
 out (analog phase shift, sub-sample delay) becomes
 ``reference_hint["phase_deg"]``.
@@ -104,6 +105,7 @@ from __future__ import annotations
 import logging
 import math
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 from fractions import Fraction
 from typing import Any
@@ -481,6 +483,7 @@ class SoundCardSource(Source):
         self._stream_latency = None
         self._delay_note = ""
         self._delay_trials = []
+        self._last_flag_frame = -1  # callback frame of the latest status flag
 
     def _counters(self) -> dict[str, int]:
         return {"input_overflows": self.input_overflows,
@@ -570,7 +573,9 @@ class SoundCardSource(Source):
             rec[~(np.abs(rec) < 1e3)] = 0.0
             found, margin = _find_burst(rec, self._burst)
             delays.append(found if margin >= PEAK_MARGIN else None)
-            if k and found is not None and delays[-2] is not None \
+            # both bursts of the pair, and the time between, free of device flags
+            clean = self._last_flag_frame < at - self._window
+            if k and clean and found is not None and delays[-2] is not None \
                     and abs(found - delays[-2]) <= 1:
                 delay = found
                 break
@@ -580,6 +585,9 @@ class SoundCardSource(Source):
             if all(d is None for d in delays):
                 self._delay_note = (f"burst not found on input {self._loop_col} "
                                     f"(peak only {margin:.1f}x the next lag)")
+            elif self._last_flag_frame >= self._burst_lead:
+                self._delay_note = (f"device underflows or overflows during the "
+                                    f"{len(delays)} bursts (delays found: {delays})")
             else:
                 self._delay_note = f"delay not steady over {len(delays)} bursts: {delays}"
             log.warning("%s: loopback delay not measured: %s; the reference phase is unknown",
@@ -603,6 +611,7 @@ class SoundCardSource(Source):
         c0 = self._frame
         ring = self._ring
         if status:
+            self._last_flag_frame = c0
             if status.input_overflow:
                 self.input_overflows += 1
                 if ring is not None:
@@ -666,23 +675,17 @@ def _sounddevice():
     return sounddevice
 
 
-class _portaudio_errors:
-    """Context manager: the one place PortAudio errors become SourceError."""
-
-    def __init__(self, action: str):
-        self.action = action
-
-    def __enter__(self):
-        return self
-
-    def __exit__(self, kind, exc, tb):
-        if exc is None or isinstance(exc, SettingError):
-            return False
-        import sounddevice
-        if isinstance(exc, (sounddevice.PortAudioError, ValueError)):
-            text = exc.args[0] if exc.args else str(exc)
-            raise SourceError(f"{self.action}: {text}") from exc
-        return False
+@contextmanager
+def _portaudio_errors(action: str):
+    """The one place PortAudio errors become a one-line SourceError (chained)."""
+    import sounddevice
+    try:
+        yield
+    except SettingError:
+        raise
+    except (sounddevice.PortAudioError, ValueError) as exc:
+        text = exc.args[0] if exc.args else str(exc)
+        raise SourceError(f"{action}: {text}") from exc
 
 
 def _find_burst(rec: np.ndarray, burst: np.ndarray) -> tuple[int, float]:
