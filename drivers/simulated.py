@@ -148,6 +148,7 @@ class SimulatedSource(Source):
                        f"mains {mains_hz:g} Hz, {target})")
         self.reference_hint = {"frequency_hz": led_hz, "phase_deg": 0.0}
         self._seed = seed
+        self._cloud_phase = np.random.default_rng([seed, 99]).uniform(0, 2 * np.pi, 3)
         self._thread: threading.Thread | None = None
         self._stop = threading.Event()
         self._index = 0  # next frame index handed to the ring (producer thread)
@@ -201,39 +202,56 @@ class SimulatedSource(Source):
             return out
         return self._generate_chunk(start, n)
 
+    def _slow_terms(self, t: np.ndarray):
+        """Slowly varying scene terms at times ``t``: (distance m, cloud factor,
+        mains phase wander in cycles).  Evaluated at chunk edges only and
+        interpolated linearly inside a chunk (they change over seconds)."""
+        sc, ph = self.scene, self._cloud_phase
+        shade = 0.5 + 0.5 * np.sin(2 * np.pi * 0.013 * t + ph[0]) * np.sin(2 * np.pi * 0.031 * t + ph[1])
+        cloud = 1.0 - 0.55 * np.clip(shade + 0.15 * np.sin(2 * np.pi * 0.11 * t + ph[2]), 0, 1) ** 3
+        # mains frequency wanders +-0.1 Hz (REFERENCES row 8): phase is its integral
+        wander = -0.1 / (2 * np.pi * 0.02) * (np.cos(2 * np.pi * 0.02 * t + ph[0]) - np.cos(ph[0]))
+        return sc.distance(t), cloud, wander
+
+    def _cycle_fraction(self, k: np.ndarray, f_hz: float) -> np.ndarray:
+        """Fraction of the current cycle of ``f_hz`` at sample indices ``k``;
+        exact integer arithmetic when frequency and rate are whole numbers."""
+        fs = self.rate_hz
+        if float(f_hz).is_integer() and fs.is_integer():
+            return ((k * int(f_hz)) % int(fs)) * (1.0 / fs)
+        c = k * (f_hz / fs)
+        return c - np.floor(c)
+
     def _generate_chunk(self, start: int, n: int) -> np.ndarray:
         sc, fs = self.scene, self.rate_hz
         k = np.arange(start, start + n, dtype=np.int64)
-        t = k / fs
-        chunk_id = start // CHUNK
-        rng = np.random.default_rng([self._seed, chunk_id])
-        led = ((k * sc.led_hz) % fs) < 0.5 * fs  # exact 50 % duty from integer arithmetic
-        led = led.astype(np.float64)
-        d = sc.distance(t)
-        i_sig = sc.resp_a_w * sc.reflected_w(d) * led
-        # clouds: smooth, slow, deterministic in t (sum of slow sines with seeded phases)
-        cr = np.random.default_rng([self._seed, 99])
-        ph = cr.uniform(0, 2 * np.pi, 3)
-        shade = 0.5 + 0.5 * np.sin(2 * np.pi * 0.013 * t + ph[0]) * np.sin(2 * np.pi * 0.031 * t + ph[1])
-        cloud = 1.0 - 0.55 * np.clip(shade + 0.15 * np.sin(2 * np.pi * 0.11 * t + ph[2]), 0, 1) ** 3
-        mains_f = sc.mains_hz + 0.1 * np.sin(2 * np.pi * 0.02 * t + ph[0])
-        mains_phase = 2 * np.pi * (sc.mains_hz * t - 0.1 / (2 * np.pi * 0.02)
-                                   * (np.cos(2 * np.pi * 0.02 * t + ph[0]) - np.cos(ph[0])))
-        del mains_f
-        i_sun = sc.i_sun * cloud
-        i_lamp = sc.i_lamp * (1 + sc.lamp_depth * np.cos(2 * mains_phase))
-        pwm = ((k * sc.pwm_hz) % fs) < sc.pwm_duty * fs
-        i_pwm = sc.i_pwm * pwm
-        i_total = i_sig + i_sun + i_lamp + i_pwm
+        frac = np.arange(n) / n
+        edges = np.array([start, start + n]) / fs
+        (d0, d1), (c0, c1), (w0, w1) = self._slow_terms(edges)
+        d = d0 + (d1 - d0) * frac
+        cloud = c0 + (c1 - c0) * frac
+        led = (self._cycle_fraction(k, sc.led_hz) < 0.5).astype(np.float64)  # exact 50 % duty
+        pwm = self._cycle_fraction(k, sc.pwm_hz) < sc.pwm_duty
+        theta = 2 * np.pi * (self._cycle_fraction(k, sc.mains_hz) + w0 + (w1 - w0) * frac)
+        sn = np.sin(theta)
+        s2 = sn * sn
+        # photocurrents: signal (Lambertian, row 9), sun with clouds, lamp
+        # flicker at 2x mains (cos 2x = 1 - 2 sin^2 x), PWM grow lights
+        i_total = sc.resp_a_w * sc.reflected_w(d) * led
+        i_total += sc.i_sun * cloud
+        i_total += sc.i_lamp * (1 + sc.lamp_depth * (1 - 2 * s2))
+        i_total += sc.i_pwm * pwm
         v = sc.r_f * i_total
-        v += (sc.hum_v[0] * np.sin(mains_phase) + sc.hum_v[1] * np.sin(3 * mains_phase)
-              + sc.hum_v[2] * np.sin(5 * mains_phase))
+        # hum at the 1st, 3rd, 5th mains harmonics (multiple-angle identities)
+        h1, h3, h5 = sc.hum_v
+        v += sn * (h1 + h3 * (3 - 4 * s2) + h5 * (5 - 20 * s2 + 16 * s2 * s2))
         density = sc.noise_density_v(float(i_total.mean()))
-        v += rng.standard_normal(n) * density * np.sqrt(fs / 2)
+        rng = np.random.default_rng([self._seed, start // CHUNK])
+        v += rng.standard_normal(n) * (density * np.sqrt(fs / 2))
         q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
-        code = np.clip(np.round(v / q), -2 ** (sc.adc_bits - 1), 2 ** (sc.adc_bits - 1) - 1)
+        code = np.clip(np.round(v * (1 / q)), -2 ** (sc.adc_bits - 1), 2 ** (sc.adc_bits - 1) - 1)
         out = np.empty((n, 2), dtype=np.float32)
-        out[:, 0] = code * q / sc.adc_fs_v
+        out[:, 0] = code * (q / sc.adc_fs_v)
         out[:, 1] = led
         return out
 

@@ -68,7 +68,7 @@ class WavWriter:
         a = np.asarray(frames, dtype="<f4")
         if a.ndim != 2 or a.shape[1] != self.channels:
             raise ValueError(f"expected (n, {self.channels}) frames, got {a.shape}")
-        self._f.write(np.ascontiguousarray(a).tobytes())
+        self._f.write(np.ascontiguousarray(a))  # buffer protocol: no copy for float32 input
         self.frames += a.shape[0]
 
     def flush(self) -> None:
