@@ -73,7 +73,7 @@ fi
 # -- keep a low-latency client on the monitor --------------------------------------
 if ! { [ -f "$state/monitor.pid" ] && kill -0 "$(cat "$state/monitor.pid")" 2>/dev/null; }; then
     setsid nohup pacat --record --device="$sink.monitor" --latency-msec=5 \
-        --format=float32le --rate=48000 --channels=2 >/dev/null 2>"$state/monitor.log" &
+        --format=float32le --rate=48000 --channels=2 >/dev/null 2>>"$state/monitor.log" &
     echo $! >"$state/monitor.pid"
 fi
 

@@ -39,7 +39,7 @@ drive : table, optional
 
     - ``output_channel`` (int, default 0, 0-based),
     - ``waveform`` (``"square"`` | ``"sine"``, default ``"square"``),
-    - ``frequency_hz`` (required, above 0 and below Nyquist),
+    - ``frequency_hz`` (required, at least 0.1 Hz and below Nyquist),
     - ``duty`` (square only, fraction of the period at the high level,
       0 < duty < 1, default 0.5),
     - ``amplitude`` (required, 0 < a <= 1 full scale: the sine's peak, or the
@@ -192,9 +192,10 @@ class DriveSpec:
         if "frequency_hz" not in table:
             raise SettingError("frequency_hz", None, "required: the modulation frequency, Hz")
         freq = _number(table, "frequency_hz")
-        if not 0 < freq < rate_hz / 2:
+        if not 1 / MAX_TABLE_S <= freq < rate_hz / 2:
             raise SettingError("frequency_hz", table["frequency_hz"],
-                               f"must be above 0 and below Nyquist, {rate_hz / 2:g} Hz")
+                               f"must be at least {1 / MAX_TABLE_S:g} Hz and below Nyquist, "
+                               f"{rate_hz / 2:g} Hz")
         if "duty" in table and waveform != "square":
             raise SettingError("duty", table["duty"], 'only for waveform = "square"')
         duty = _number(table, "duty", 0.5)
@@ -223,7 +224,7 @@ class DriveSpec:
         frequency_hz : float
             The exact frequency played, ``rate_hz * p / q``.
         """
-        ratio = Fraction(self.frequency_hz / rate_hz).limit_denominator(
+        ratio = (Fraction(self.frequency_hz) / Fraction(rate_hz)).limit_denominator(
             max(1, int(MAX_TABLE_S * rate_hz)))
         p, q = ratio.numerator, ratio.denominator
         # phase of sample j as an exact integer fraction r/q of a period
@@ -442,7 +443,8 @@ class SoundCardSource(Source):
         if self.drive is not None:
             d = self.drive
             drive = {"output_channel": d.output_channel, "waveform": d.waveform,
-                     "frequency_hz": self._drive_hz, "requested_frequency_hz": d.frequency_hz,
+                     "frequency_hz": self._drive_hz or d.frequency_hz,
+                     "requested_frequency_hz": d.frequency_hz,
                      "amplitude": d.amplitude}
             if d.waveform == "square":
                 drive["duty"] = d.duty
@@ -450,6 +452,7 @@ class SoundCardSource(Source):
                 drive["loopback_delay_frames"] = self.loopback_delay_frames
                 drive["loopback_delay_s"] = self.loopback_delay_frames / self.rate_hz
                 drive["loop_phase_deg"] = self._loop_phase_deg
+                # one per burst played; -1: that burst was not found
                 drive["loopback_delay_trials"] = list(self._delay_trials)
             else:
                 drive["loopback_delay"] = self._delay_note or "not measured"
@@ -524,6 +527,7 @@ class SoundCardSource(Source):
     def _prepare_buffers(self, n_in: int) -> None:
         """Everything the callback touches, allocated before the stream starts."""
         self._reset_counters()
+        self.loopback_delay_frames = self._loop_phase_deg = self.reference_hint = None
         self._scale = np.float32(self.volts_full_scale or 1.0)
         self._settle = int(SETTLE_S * self.rate_hz)
         self._buf = np.zeros((self.block, self.channels), dtype=np.float32)

@@ -148,7 +148,7 @@ def test_registered_and_every_option_documented():
     ({"device": True}, r"^device = True: must be a part of a device name or its index"),
     ({"drive": 1000}, r"^drive = 1000: must be a table"),
     ({"drive": {"frequency_hz": 30000, "amplitude": 0.5}},
-     r"^drive.frequency_hz = 30000: must be above 0 and below Nyquist, 24000 Hz$"),
+     r"^drive.frequency_hz = 30000: must be at least 0.1 Hz and below Nyquist, 24000 Hz$"),
     ({"drive": {"frequency_hz": 1000}}, r"^drive.amplitude = None: required"),
     ({"drive": {"frequency_hz": 1000, "amplitude": 1.5}},
      r"^drive.amplitude = 1.5: must be above 0 and at most 1"),
