@@ -21,10 +21,15 @@ phi_ref`` wrapped to (-180, 180]: a signal that leads the reference reads a
 positive phase.  The mixer multiplies by ``sqrt(2) cos(theta)`` and
 ``-sqrt(2) sin(theta)``, ``theta`` being the reference phase.
 
-``noise`` is the RMS fluctuation of the output, ``sqrt((var(I) + var(Q)) / 2)``
-over the last ``noise_window_s`` of output rows (sample variance, ddof 1; fewer
-rows than a window: the rows there are; NaN before two rows).  For white input
-of one-sided density ``e`` (V/sqrt(Hz)) it tends to ``e * sqrt(enbw_hz)``.
+``noise`` is the RMS fluctuation of the output across the signal's direction:
+the standard deviation of (I, Q) along the unit vector perpendicular to their
+mean over the last ``noise_window_s`` of output rows (sample variance, ddof 1;
+fewer rows than a window: the rows there are; NaN before two rows; with a zero
+mean, ``sqrt((var(I) + var(Q)) / 2)``).  A target moved toward or away from the
+sensor changes the amplitude along the mean direction only, so the noise
+read-out does not mistake motion for noise.  Noise is isotropic in the (I, Q)
+plane, so for white input of one-sided density ``e`` (V/sqrt(Hz)) it still
+tends to ``e * sqrt(enbw_hz)``.
 For the RMS detector ``noise`` is the standard deviation of ``amplitude`` over
 the window and ``snr_db`` compares the window's mean amplitude with it.
 
@@ -90,6 +95,8 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 #: One detector reading (one output row).
+_SQRT_HALF = np.sqrt(0.5)
+
 READING_DTYPE = np.dtype([
     ("index", np.int64),
     ("in_phase", np.float64),
@@ -285,6 +292,7 @@ class _Detector:
     """Shared parts: the output low-pass, the noise window, row selection."""
 
     _channels = 1
+    _stat_channels = 1  # streams kept in the noise window
 
     def __init__(self, spec: DetectorSpec, fs: float, output_every: int,
                  exact_path: bool = False):
@@ -326,7 +334,7 @@ class _Detector:
     def reset(self) -> None:
         """Forget all state (filters start from zero, the noise window empties)."""
         self.zi = np.zeros((self.n_sections, self._channels, 1))
-        self.stats = _WindowStats(self.window_rows, self._channels)
+        self.stats = _WindowStats(self.window_rows, self._stat_channels)
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
@@ -376,6 +384,7 @@ class LockIn(_Detector):
     """
 
     _channels = 2
+    _stat_channels = 3  # I, Q and (I + Q)/sqrt 2 (for the I-Q covariance)
 
     def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
                  output_every: int, exact_path: bool = False):
@@ -475,8 +484,20 @@ class LockIn(_Detector):
         rows["quadrature"] = q_rows
         rows["amplitude"] = np.hypot(i_rows, q_rows)
         rows["phase_deg"] = _wrap_deg(np.degrees(np.arctan2(q_rows, i_rows)))
-        _, var = self.stats.update(np.stack((i_rows, q_rows), axis=1))
-        rows["noise"] = np.sqrt(var.mean(axis=1))
+        # Noise across the signal's direction: the variance of (I, Q) along the
+        # unit vector perpendicular to the window's mean (I, Q).  Slow amplitude
+        # changes (a target being moved) lie along the mean and are not noise;
+        # isotropic noise has the same variance in every direction, so for
+        # white input this still tends to e * sqrt(ENBW).  The third stream
+        # (I + Q)/sqrt 2 gives the covariance: var = (vI + vQ)/2 + cov.
+        mean, var = self.stats.update(np.stack((i_rows, q_rows, (i_rows + q_rows) * _SQRT_HALF), axis=1))
+        mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
+        cov = var[:, 2] - 0.5 * (vi + vq)
+        m2 = mi * mi + mq * mq
+        with np.errstate(invalid="ignore", divide="ignore"):
+            across = np.where(m2 > 0, (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
+                              0.5 * (vi + vq))
+        rows["noise"] = np.sqrt(np.maximum(across, 0.0))
         rows["snr_db"] = _snr_db(rows["amplitude"], rows["noise"])
         rows["ref_hz"] = ref_hz
         rows["locked"] = True if locked is None else locked

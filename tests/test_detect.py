@@ -79,6 +79,29 @@ def test_white_noise_reads_density_times_sqrt_enbw(slope):
     assert abs(20 * math.log10(measured / expected)) < 0.5
 
 
+@pytest.mark.parametrize("signal_amp", [0.0, 0.5])
+def test_noise_with_a_moving_target_still_reads_density_times_sqrt_enbw(signal_amp):
+    # closed form as above (e*sqrt(ENBW), REFERENCES row 3a); the signal's
+    # amplitude ramps 4:1 within each noise window, as when the target is
+    # moved: motion changes (I, Q) along the signal's direction only, so the
+    # noise read-out, taken across that direction, must not count it.
+    rng = np.random.default_rng(1241)
+    sigma = 0.1
+    density = sigma * math.sqrt(2 / FS)
+    n = int(8 * FS)
+    ramp = signal_amp * (1 - 0.75 * ((np.arange(n) / FS) % 2.0) / 2.0)
+    x = rng.normal(0, sigma, n) + ramp * np.cos(2 * np.pi * 1370.0 * np.arange(n) / FS + 0.7)
+    det = lockin(tau=0.001, slope=24, out=480, window=2.0)
+    rows = run(det, x, block=4096)
+    ends = rows[np.isin(rows["index"], (np.arange(1, 5) * 2 * FS - 480).astype(int))]
+    measured = np.sqrt(np.mean(ends["noise"] ** 2))
+    assert abs(20 * math.log10(measured / (density * math.sqrt(det.enbw_hz)))) < 0.5
+    if signal_amp:  # while the plain spread of (I, Q) over a window is dominated by the ramp
+        last = rows[rows["index"] >= 6 * FS]
+        spread = np.sqrt((np.var(last["in_phase"]) + np.var(last["quadrature"])) / 2)
+        assert 20 * math.log10(spread / (density * math.sqrt(det.enbw_hz))) > 10
+
+
 def test_phase_convention_signal_leading_reads_positive():
     # our stated convention: signal at +30 deg relative to the reference reads +30
     for ref_deg, sig_deg in ((0.0, 30.0), (10.0, 40.0), (-170.0, -140.0)):
