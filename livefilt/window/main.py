@@ -46,9 +46,9 @@ CAUTION_TEXT = (
 HELP_TEXT = """<h3>livefilt live window</h3>
 <p><b>Strip</b>: raw input and each chain's filtered output over the last N seconds
 (min/max per pixel column, so short peaks stay visible).<br>
-<b>Strength</b>: each chain's detected amplitude (RMS, log scale) and SNR over time; the
+<b>Strength</b>: each chain's detected amplitude (RMS, in dB re 1 unit) and SNR over time; the
 large read-out shows the latest values and A − B in dB.<br>
-<b>Spectrum</b>: Welch estimate of the last second, with each chain's gain curve
+<b>Spectrum</b>: Welch estimate of the last half second, with each chain's gain curve
 (right axis), the modulation frequency (solid) and mains harmonics (dashed).</p>
 <p><b>Settings</b>: every field applies on Enter, at the next block, without stopping
 acquisition. A refused value turns red with the reason beside it; the chain keeps its last
@@ -249,6 +249,7 @@ def run_window(settings, duration_s: float | None = None, screenshot=None, out=N
             if not win.save_screenshot(screenshot):
                 log.warning("could not save the screenshot to %s", screenshot)
         win.close()  # stops the engine and closes the recording
+        app.quit()  # other windows may be open (a test's); exec() must return
 
     if duration_s is not None:
         QtCore.QTimer.singleShot(int(max(0.0, duration_s) * 1000), finish)

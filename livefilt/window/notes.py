@@ -19,12 +19,20 @@ import time
 from PySide6 import QtCore, QtWidgets
 
 from ..errors import LivefiltError
-from ..readout import si
 from . import palette
 
 __all__ = ["NotesBar", "RecordBar"]
 
 log = logging.getLogger(__name__)
+
+
+def _bytes(n: float) -> str:
+    """``123456789`` -> ``"123.5 MB"`` (decimal units, as disks are sold)."""
+    for unit in ("B", "kB", "MB", "GB", "TB"):
+        if abs(n) < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000.0
+    return ""
 
 
 def _metres(text: str, what: str) -> float:
@@ -161,7 +169,7 @@ class RecordBar(QtWidgets.QGroupBox):
         rec = self.engine.stop_recording()
         self.button.setText("Start recording")
         if rec is not None:
-            self.info.setText(f"saved {si(rec.bytes_written, 'B', 3)} to\n{rec.folder}")
+            self.info.setText(f"saved {_bytes(rec.bytes_written)} to\n{rec.folder}")
         return rec
 
     def refresh(self) -> None:
@@ -171,8 +179,8 @@ class RecordBar(QtWidgets.QGroupBox):
         t = time.monotonic() - self._t0
         m, s = divmod(int(t), 60)
         try:
-            free = si(rec.free_bytes(), "B", 3)
+            free = _bytes(rec.free_bytes())
         except OSError:
             free = "?"
-        self.info.setText(f"● recording {m:02d}:{s:02d}   {si(rec.bytes_written, 'B', 3)} written"
+        self.info.setText(f"● recording {m:02d}:{s:02d}   {_bytes(rec.bytes_written)} written"
                           f"   {free} free\n{rec.folder}")

@@ -1,7 +1,7 @@
 """Spectrum of the raw input and of each chain's output, with the chains' responses.
 
 Power spectral density by Welch's method (:func:`scipy.signal.welch`, Hann
-window, 50 % overlap) over the last second of the tap, in dB re units²/Hz.
+window, 50 % overlap) over the last half second of the tap, in dB re units²/Hz.
 Each chain's magnitude response (:meth:`Chain.response`) is drawn over it on
 its own gain axis at the right.  Vertical marks: the modulation frequency and
 the mains harmonics.  Frequency axis log or linear.
@@ -23,14 +23,15 @@ __all__ = ["SpectrumPanel", "welch_db"]
 
 log = logging.getLogger(__name__)
 
-RESOLUTION_HZ = 6.0   # aimed Welch bin width
-SPAN_S = 1.0          # data per estimate
+RESOLUTION_HZ = 6.0   # aimed Welch bin width...
+MAX_SEGMENT = 8192    # ...but at most this many points per segment (4097 bins to draw)
+SPAN_S = 0.5          # data per estimate
 
 
 def welch_db(x: np.ndarray, rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
     """(f, 10 log10 PSD) of each row of ``x`` (last axis time)."""
     nper = int(2 ** round(np.log2(rate_hz / RESOLUTION_HZ)))
-    nper = max(64, min(nper, x.shape[-1]))
+    nper = max(64, min(nper, MAX_SEGMENT, x.shape[-1]))
     f, p = signal.welch(x, fs=rate_hz, window="hann", nperseg=nper, axis=-1)
     with np.errstate(divide="ignore"):
         return f, 10 * np.log10(p)
@@ -124,7 +125,7 @@ class SpectrumPanel(QtWidgets.QWidget):
         self.refresh_responses()
 
     def refresh(self) -> None:
-        """New Welch estimate from the last second of the tap; responses if changed."""
+        """New Welch estimate from the last half second of the tap; responses if changed."""
         start, data = self.tap.last(SPAN_S)
         if data.shape[1] < 256:
             return

@@ -76,7 +76,7 @@ class RowHistory:
 
 
 class StrengthPlots(pg.GraphicsLayoutWidget):
-    """Amplitude (log) and SNR (dB) of every chain versus time."""
+    """Amplitude and SNR (both in dB) of every chain versus time."""
 
     def __init__(self, histories: dict[str, RowHistory], units: str, parent=None):
         super().__init__(parent=parent)
@@ -84,10 +84,9 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(2)
         self.p_amp = self.addPlot(row=0, col=0)
         self.p_snr = self.addPlot(row=1, col=0)
-        self.p_amp.setLabel("left", f"amplitude, {units} rms")
+        self.p_amp.setLabel("left", f"amplitude (dB re 1 {units} rms)")
         self.p_snr.setLabel("left", "SNR (dB)")
         self.p_snr.setLabel("bottom", "time since start (s)")
-        self.p_amp.setLogMode(y=True)
         self.p_amp.hideAxis("bottom")
         self.p_amp.setXLink(self.p_snr)
         for p in (self.p_amp, self.p_snr):
@@ -110,7 +109,8 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
             if not h.update():
                 continue
             changed = True
-            amp = np.where(h.amp > 0, h.amp, np.nan)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                amp = np.where(h.amp > 0, 20 * np.log10(h.amp), np.nan)
             c_amp, c_snr = self.curves[name]
             c_amp.setData(h.t, amp, connect="finite")
             c_snr.setData(h.t, h.snr, connect="finite")
@@ -128,9 +128,9 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         amp = amp[np.isfinite(amp) & (amp > 0)]
         snr = snr[np.isfinite(snr)]
         if len(amp):
-            # settling rows start near zero: show at most four decades below the top
-            top = np.log10(amp.max())
-            fit_range(self.p_amp, max(np.log10(amp.min()), top - 4), top)
+            # settling rows start near zero: show at most 80 dB below the top
+            top = 20 * np.log10(amp.max())
+            fit_range(self.p_amp, max(20 * np.log10(amp.min()), top - 80), top)
         if len(snr):
             fit_range(self.p_snr, snr.min(), snr.max())
 

@@ -251,7 +251,8 @@ class StripChart(pg.GraphicsLayoutWidget):
         for p in self.plots:
             ln = pg.InfiniteLine(time_s, angle=90, pen=palette.mark_pen("marker"),
                                  label=label if p is self.plots[0] else None,
-                                 labelOpts={"position": 0.88, "color": palette.MARKER})
+                                 labelOpts={"position": 0.9 - 0.15 * (len(self._markers) % 4),
+                                            "color": palette.MARKER})
             p.addItem(ln, ignoreBounds=True)
             lines.append((p, ln))
         self._markers.append((time_s, lines))
