@@ -225,7 +225,7 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
         if names.index(n) != i:
             raise SettingError(f"chains[{i}].name", n, "must differ from the other chains' names")
     for i, c in enumerate(chains):
-        if c.detector.type == "lockin" and reference is None and source.driver not in _SELF_REFERENCED:
+        if c.detector.type == "lockin" and reference is None and not _self_referenced(source):
             raise SettingError(f"chains[{i}].detector.type", "lockin",
                                "a lock-in needs a [reference] table with frequency_hz or channel")
     out_t = _table(doc, "output", "output")
@@ -237,9 +237,11 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
     return Settings(source, reference, chains, OutputSettings(interval), origin)
 
 
-#: Drivers that announce their modulation frequency themselves (reference_hint),
-#: so a lock-in chain may go without a [reference] table.
-_SELF_REFERENCED = {"serial"}
+def _self_referenced(source: SourceSettings) -> bool:
+    """True when the source announces the modulation itself (``reference_hint``),
+    so a lock-in may go without a ``[reference]`` table: the serial firmware's
+    self-description, or a sound card that drives the light source."""
+    return source.driver == "serial" or (source.driver == "soundcard" and "drive" in source.options)
 
 
 def load_config(path: str | Path) -> Settings:

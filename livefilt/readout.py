@@ -31,7 +31,11 @@ def si(x: float, unit: str, digits: int = 4) -> str:
 
 
 def _db(x: float) -> str:
-    return "—" if x is None or not math.isfinite(x) else f"{x:6.1f} dB"
+    if x is None or math.isnan(x):
+        return "—"
+    if math.isinf(x):  # a noise-free loopback: no noise to compare with
+        return "  +∞ dB" if x > 0 else "  −∞ dB"
+    return f"{x:6.1f} dB"
 
 
 def _clock(t: float) -> str:
