@@ -46,7 +46,7 @@ CAUTION_TEXT = (
 HELP_TEXT = """<h3>livefilt live window</h3>
 <p><b>Strip</b>: raw input and each chain's filtered output over the last N seconds
 (min/max per pixel column, so short peaks stay visible).<br>
-<b>Strength</b>: each chain's detected amplitude (RMS, in dB re 1 unit) and SNR over time; the
+<b>Strength</b>: each chain's detected amplitude (RMS, in dBFS or dBV) and SNR over time; the
 large read-out shows the latest values and A − B in dB.<br>
 <b>Spectrum</b>: Welch estimate of the last half second, with each chain's gain curve
 (right axis), the modulation frequency (solid) and mains harmonics (dashed).</p>

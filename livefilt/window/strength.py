@@ -84,7 +84,7 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(2)
         self.p_amp = self.addPlot(row=0, col=0)
         self.p_snr = self.addPlot(row=1, col=0)
-        self.p_amp.setLabel("left", f"amplitude (dB re 1 {units} rms)")
+        self.p_amp.setLabel("left", f"amplitude (dB{units})")
         self.p_snr.setLabel("left", "SNR (dB)")
         self.p_snr.setLabel("bottom", "time since start (s)")
         self.p_amp.hideAxis("bottom")
@@ -132,7 +132,9 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
             top = 20 * np.log10(amp.max())
             fit_range(self.p_amp, max(20 * np.log10(amp.min()), top - 80), top)
         if len(snr):
-            fit_range(self.p_snr, snr.min(), snr.max())
+            # the first rows (noise estimate still empty) can read 150 dB: keep them out of scale
+            lo, hi = np.percentile(snr, [1, 99])
+            fit_range(self.p_snr, lo, hi)
 
     def add_marker(self, time_s: float) -> None:
         lines = []
