@@ -63,6 +63,12 @@ class Chain:
     def note_gap(self, frames: int) -> None:
         self.detector.note_gap(frames)
 
+    def set_reference(self, reference: ReferenceSpec) -> None:
+        """Use a new reference (at a block boundary); the detector starts afresh."""
+        self.reference = reference
+        self.ref_channel = reference.channel if reference is not None else None
+        self.detector = make_detector(self.settings.detector, reference, self.fs, self.output_every)
+
     def retune(self, settings: ChainSettings) -> None:
         """Apply new settings at a block boundary.
 

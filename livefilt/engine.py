@@ -23,7 +23,7 @@ from __future__ import annotations
 import logging
 import threading
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -96,6 +96,7 @@ class Engine:
                      self.rate_hz, settings.source.rate_hz)
         self.settings = settings.at_rate(self.rate_hz, channels=src.channels)
         self.reference = self.settings.reference
+        self._reference_changed = False
         if self.reference is None and src.reference_hint:
             from .detect import ReferenceSpec
             hint = {k: v for k, v in src.reference_hint.items() if k in ("frequency_hz", "phase_deg")}
@@ -162,11 +163,28 @@ class Engine:
             self._pending.append((index, new))
         return new
 
+    def change_reference(self, table) -> "ReferenceSpec":
+        """Validate a new ``[reference]`` table now; apply it to every chain at
+        the next block (each lock-in restarts its output filter from zero).
+
+        Raises SettingError with field paths under ``reference``.
+        """
+        from .detect import ReferenceSpec
+        try:
+            new = ReferenceSpec.from_mapping(table, self.rate_hz, self.source.channels)
+        except SettingError as e:
+            raise e.within("reference") from None
+        with self._pending_lock:
+            self._pending.append((None, new))
+        return new
+
     def current_settings(self) -> Settings:
         """The settings now in force (after applied changes), for saving."""
         s = self.settings
         for i, c in enumerate(self.chains):
             s = s.with_chain(i, c.settings)
+        if self._reference_changed:
+            s = replace(s, reference=self.reference)
         return s
 
     def add_marker(self, distance_m: float | None, note: str = "") -> dict:
@@ -278,6 +296,11 @@ class Engine:
             with self._pending_lock:
                 pending, self._pending = self._pending, []
             for i, new in pending:
+                if i is None:  # a new reference for every chain
+                    self.reference, self._reference_changed = new, True
+                    for c in self.chains:
+                        c.set_reference(new)
+                    continue
                 self.chains[i].retune(new)
                 self.chains[i].channel = self._inputs[i] = self._channel_index(new, i)
         st = self.stats

@@ -114,3 +114,15 @@ def test_change_chain_refuses_bad_values_with_the_loader_message():
     with pytest.raises(SettingError, match=r"chains\[1\]\.stages\[1\]\.c_farad"):
         e.change_chain(1, table)
     e.source.stop()
+
+
+def test_change_reference_applies_to_every_chain_and_is_saved():
+    from livefilt.errors import SettingError
+    e = Engine(fast_demo())
+    with pytest.raises(SettingError, match=r"reference\.frequency_hz = 30000"):
+        e.change_reference({"frequency_hz": 30000})
+    e.change_reference({"frequency_hz": 1371.5})
+    rows = collect(e, 0.5)
+    for name in rows:
+        assert np.all(rows[name]["ref_hz"] == 1371.5)
+    assert e.current_settings().reference.frequency_hz == 1371.5
