@@ -126,6 +126,17 @@ def cmd_sources(args) -> int:
 
 def cmd_speed(args) -> int:
     from .speed import run_speed
+    args.window_bench = None
+    if args.window:
+        if not _has_display():
+            os.environ["QT_QPA_PLATFORM"] = "offscreen"
+        try:
+            from .window.bench import measure_window
+        except ImportError as e:
+            print(f"livefilt: --window needs pyqtgraph and PySide6 ({e.name or e} missing: "
+                  "pip install 'livefilt[window]')", file=sys.stderr)
+            return 2
+        args.window_bench = measure_window
     return run_speed(args)
 
 
@@ -158,6 +169,7 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--config", metavar="FILE", help="measure this config's chains")
     sp.add_argument("--json", metavar="FILE", help="also write the table as JSON")
     sp.add_argument("--quick", action="store_true", help="shorter measurements (noisier)")
+    sp.add_argument("--window", action="store_true", help="also measure the live window (frame rate, CPU, latency)")
     sp.set_defaults(func=cmd_speed)
     return p
 

@@ -84,6 +84,8 @@ def run_speed(args) -> int:
     settings = load_config(args.config) if getattr(args, "config", None) else None
     quick = bool(getattr(args, "quick", False))
     rows = measure(settings, quick)
+    if getattr(args, "window_bench", None) is not None:
+        rows += window_rows(args.window_bench, quick)
     print(_table(rows))
     missed = [r for r in rows if r["pass"] is False]
     print(f"{len(missed)} target(s) missed" if missed else "every target met")
@@ -111,6 +113,28 @@ def measure(settings=None, quick: bool = False) -> list[dict]:
     rows.append(_allocations(benches[-1]))
     rows.append(_memory(benches[0] if settings is None else benches[-1], quick))
     return rows
+
+
+def window_rows(measure_window, quick: bool = False) -> list[dict]:
+    """The live window's figures: frame rate and drawing CPU with a 10 s strip at
+    192 kHz and both chains, and sample-to-screen latency at 48 kHz with
+    256-sample blocks.  ``measure_window`` is ``livefilt.window.bench.measure_window``
+    (passed in by the CLI, so this module never imports Qt)."""
+    seconds = 4.0 if quick else 10.0
+    fast = measure_window(seconds, 192000.0, block=256, strip_s=10.0)
+    slow = measure_window(seconds, 48000.0, block=256, strip_s=10.0)
+    return [
+        _row("window at 192 kHz, 10 s strip, chains A and B: frames per second", fast["fps"], "fps",
+             ">= 30", fast["fps"] >= 30),
+        _row("window at 192 kHz, 10 s strip: drawing CPU, share of one core", 100 * fast["cpu_fraction"],
+             "%", "< 25", fast["cpu_fraction"] < 0.25),
+        _row("window at 192 kHz: samples dropped while drawing", fast["dropped"], "", "0",
+             fast["dropped"] == 0),
+        _row("window at 48 kHz, 256-sample blocks: sample-to-screen latency, mean", slow["latency_ms"],
+             "ms", "<= 50", slow["latency_ms"] <= 50),
+        _row("window at 48 kHz, 256-sample blocks: sample-to-screen latency, 95th percentile",
+             slow["latency_p95_ms"], "ms", "-", None),
+    ]
 
 
 # -- measures ---------------------------------------------------------------
