@@ -317,11 +317,11 @@ class Engine:
             n = max(0, self._stop_at - start)
             data = data[:n]
         nch = data.shape[1]
-        ys = self._bank.process(data, self._inputs, self._y)
+        self._bank.process(data, self._inputs, self._y)
         rows_all = []
         for k, c in enumerate(self.chains):
             ref = data[:, c.ref_channel] if c.ref_channel is not None else None
-            rows = c.detect(ys[k], start, ref)
+            rows = c.detect(self._y[k, :n], start, ref)
             rows_all.append(rows)
             if len(rows):
                 self.latest[c.name] = rows[-1]

@@ -11,7 +11,7 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``sos_bank(sos, zi, bounds, channels, data, y, last)``: every chain's cascade
+  - ``sos_bank(sos, zi, bounds, last, channels, data, y)``: every chain's cascade
     on one block of frames (n, channels) in one call.
   - ``mix_internal_rows(x, offset, fracs, cycles_per_sample, phase_rad, b0,
     b1, a1, zi, first, every, rows)``: dual-phase mixer on an internal reference,
@@ -131,30 +131,33 @@ def sos_block(sos, zi, x, y):
 
 
 @_jit
-def sos_bank(sos, zi, bounds, channels, data, y, last):
+def sos_bank(sos, zi, bounds, last, channels, data, y):
     """Several cascades on one block of frames, in one call.
 
     Cascade ``c`` is sections ``bounds[c]:bounds[c + 1]`` of ``sos``/``zi``
     and reads column ``channels[c]`` of ``data`` (n, channels), any float
     type, widened to float64 as ``astype`` would; it writes ``y[c, :n]``
-    and its last input sample to ``last[c]``.
-    Same loop and order of terms as :func:`sos_block`.
+    and its last input sample to ``last[c]``.  The cascades are interleaved
+    sample by sample (they are independent, so the processor overlaps them);
+    within a cascade the loop and the order of terms are those of
+    :func:`sos_block`, so every output is bit-identical to ``sosfilt``.
+    The arguments that do not change per block come first, so a caller can
+    bind them once (``functools.partial``).
     """
     n = data.shape[0]
-    for c in range(channels.shape[0]):
-        s0 = bounds[c]
-        s1 = bounds[c + 1]
-        ch = channels[c]
-        for k in range(n):
-            v = np.float64(data[k, ch])
-            for s in range(s0, s1):
+    nc = channels.shape[0]
+    for k in range(n):
+        for c in range(nc):
+            v = np.float64(data[k, channels[c]])
+            for s in range(bounds[c], bounds[c + 1]):
                 w = sos[s, 0] * v + zi[s, 0]
                 zi[s, 0] = sos[s, 1] * v - sos[s, 4] * w + zi[s, 1]
                 zi[s, 1] = sos[s, 2] * v - sos[s, 5] * w
                 v = w
             y[c, k] = v
-        if n > 0:
-            last[c] = data[n - 1, ch]
+    if n > 0:
+        for c in range(nc):
+            last[c] = data[n - 1, channels[c]]
 
 
 @_jit
@@ -269,8 +272,8 @@ def _build() -> _Kernels:
     x = np.zeros(4)
     one = np.array([[1.0, 0, 0, 1, 0, 0]])
     sos_block(one, np.zeros((1, 2)), x, np.zeros(4))
-    sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.array([1]),
-             np.zeros((4, 2), np.float32), np.zeros((1, 4)), np.zeros(1))
+    sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.zeros(1), np.array([1]),
+             np.zeros((4, 2), np.float32), np.zeros((1, 4)))
     mix_internal_rows(x, 4094, np.zeros(2), 0.1, 0.0, 0.5, 0.1, -0.4, np.zeros((1, 2, 1)), 0, 1,
                       np.zeros((2, 4)))
     return _Kernels()

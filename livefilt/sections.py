@@ -24,6 +24,7 @@ become views into the bank's packed arrays, so their state stays theirs.
 
 from __future__ import annotations
 
+import functools
 import logging
 
 import numpy as np
@@ -186,18 +187,20 @@ class FilterBank:
         data : ndarray, shape (n, columns), float32 or float64, C-contiguous
         channels : ndarray of int64, one column per filter
         out : ndarray, shape (filters, >= n), float64, C-contiguous
+            Preallocated once by the caller (the engine passes the same buffer
+            every block, so no view is made per block).
 
         Returns
         -------
-        ndarray, the view ``out[:, :n]``
+        ndarray, ``out`` itself: its first ``n`` columns hold the block.
         """
-        n = data.shape[0]
-        if self._kernel is None or n == 0:
+        call = self._call
+        if call is not None:
+            call(channels, data, out)
+        elif data.shape[0]:
             for i, f in enumerate(self.filters):
                 f.process(data[:, channels[i]], out=out[i])
-        else:
-            self._kernel(self.sos, self.zi, self.bounds, channels, data, out, self.last)
-        return out[:, :n]
+        return out
 
     def _pack(self) -> None:
         """Gather the filters' arrays into the bank's and make theirs views."""
@@ -207,6 +210,9 @@ class FilterBank:
         self.zi = np.concatenate([f.zi for f in self.filters])
         last = np.array([f._last for f in self.filters])
         self.last = last
+        # the per-block call binds the packed arrays once (less work per block)
+        self._call = (None if self._kernel is None
+                      else functools.partial(self._kernel, self.sos, self.zi, self.bounds, self.last))
         for i, (f, a, b) in enumerate(zip(self.filters, self.bounds[:-1], self.bounds[1:])):
             f.sos, f.zi = self.sos[a:b], self.zi[a:b]
             f._last_box, f._last_at, f._bank = last, i, self
