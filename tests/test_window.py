@@ -131,6 +131,70 @@ def test_invalid_value_refused_in_place_with_loader_message(win, qtbot, artifact
     assert not f.error.isVisible() and not f.w.styleSheet()
 
 
+def test_reference_edit_moves_every_lockin_and_saves(win, qtbot, tmp_path, artifacts):
+    ref = win.settings_panel.reference
+    tap = win.engine.tap
+
+    def newest_ref_hz(name):
+        rows = tap.rows[name]
+        return float(rows[-1]["ref_hz"]) if rows else None
+
+    assert newest_ref_hz("A") == 1370.0
+    bad = ref.fields["frequency_hz"]
+    commit(bad, "30000")
+    doc = win.engine.current_settings().to_mapping()
+    doc["reference"]["frequency_hz"] = 30000
+    with pytest.raises(SettingError) as loader:
+        parse_config(doc)
+    assert bad.error.isVisible() and bad.error.text() == str(loader.value)
+    assert bad.error.text().startswith("reference.frequency_hz = 30000:")
+    shot(win, artifacts, "reference_refused")
+    commit(ref.fields["frequency_hz"], "1371.5")
+    assert not bad.error.isVisible() and "lock-in reference (set here)" == ref.title()
+    qtbot.waitUntil(lambda: newest_ref_hz("A") == 1371.5 and newest_ref_hz("B") == 1371.5,
+                    timeout=3000)
+    assert win.spectrum.marks[0].value() == pytest.approx(np.log10(1371.5))
+    path = win.settings_panel.save(tmp_path / "ref.toml")
+    assert load_config(path).reference.frequency_hz == 1371.5
+    shot(win, artifacts, "reference_1371_5")
+    commit(ref.fields["frequency_hz"], "1370")
+    qtbot.waitUntil(lambda: newest_ref_hz("A") == 1370.0, timeout=3000)
+
+
+def test_reference_announced_by_the_source_is_shown_and_overridable(qapp, qtbot, artifacts):
+    from livefilt.engine import build_source
+    from livefilt.window.editor import SettingsPanel
+
+    # a driving sound card or the serial firmware announce their modulation; here the
+    # simulated bench does (its config could not go without a [reference] table for a
+    # lock-in, so the chains detect RMS and the announced reference is what is shown)
+    doc = demo_config().to_mapping()
+    del doc["reference"]
+    for c in doc["chains"]:
+        c["detector"]["type"] = "rms"
+    settings = parse_config(doc)
+    source = build_source(settings)
+    source.reference_hint = {"frequency_hz": 1370.0, "phase_deg": 12.0}
+    engine = Engine(settings, source=source, tap_seconds=5)
+    try:
+        panel = SettingsPanel(engine)
+        qtbot.addWidget(panel)
+        ref = panel.reference
+        assert "announced by the source" in ref.title()
+        assert ref.fields["frequency_hz"].text() == "1370"
+        assert ref.fields["phase_deg"].text() == "12"
+        engine.start()
+        commit(ref.fields["phase_deg"], "30")
+        qtbot.waitUntil(lambda: engine.reference.phase_deg == 30.0, timeout=3000)
+        assert engine.current_settings().reference.phase_deg == 30.0
+        panel.resize(620, 700)
+        panel.show()
+        path = artifacts / "window_reference_from_source.png"
+        assert panel.grab().save(str(path), "PNG")
+    finally:
+        engine.stop()
+
+
 def test_copy_a_to_b_and_saved_settings_load_back(win, qtbot, tmp_path, artifacts):
     assert win.settings_panel.copy_first_to_second()
     a, b = win.engine.chains[0], win.engine.chains[1]

@@ -5,12 +5,15 @@ the whole chain table with the config loader's own checks and applies it at
 the next block boundary, without stopping acquisition.  A refused value
 turns its field red, with the loader's one-line message beside it; the chain
 keeps running on its last good settings.  Stages can be added and removed;
-"Copy A to B" and "Save settings…" act on the settings in force.
+"Copy A to B" and "Save settings…" act on the settings in force.  The lock-in
+reference (shared by every chain) is edited the same way, through
+:meth:`Engine.change_reference`.
 
 API
 ---
+- :class:`ReferenceEditor`: the reference's fields; ``table()``, ``apply()``.
 - :class:`ChainEditor`: one chain's forms; ``table()``, ``apply()``, ``load(settings)``.
-- :class:`SettingsPanel`: all chains, copy, save (``save(path)``).
+- :class:`SettingsPanel`: the reference, all chains, copy, save (``save(path)``).
 """
 
 from __future__ import annotations
@@ -25,7 +28,7 @@ from ..design import DESIGNS, STAGE_TYPES, describe
 from ..errors import SettingError
 from . import palette
 
-__all__ = ["ChainEditor", "SettingsPanel", "parse_text"]
+__all__ = ["ReferenceEditor", "ChainEditor", "SettingsPanel", "parse_text"]
 
 log = logging.getLogger(__name__)
 
@@ -64,6 +67,12 @@ def parse_text(text: str):
     return text
 
 
+def _say(label: QtWidgets.QLabel, text: str, error: bool = False) -> None:
+    """Show a form's message: red for a refusal, plain otherwise."""
+    label.setText(text)
+    label.setStyleSheet("color: #b23a30;" if error else f"color: {palette.FOREGROUND};")
+
+
 def _show(v) -> str:
     if isinstance(v, (list, tuple)):
         return ", ".join(_show(x) for x in v)
@@ -87,9 +96,10 @@ class _Field(QtWidgets.QWidget):
             self.w = QtWidgets.QCheckBox("buffered (else loaded)")
             self.w.setChecked(bool(value))
             self.w.toggled.connect(self.committed)
-        elif kind in ("design", "response", "combo"):
+        elif kind in ("design", "response", "waveform", "combo"):
             self.w = QtWidgets.QComboBox()
-            items = {"design": DESIGNS, "response": ("lowpass", "highpass")}.get(kind, ())
+            items = {"design": DESIGNS, "response": ("lowpass", "highpass"),
+                     "waveform": ("square", "sine")}.get(kind, ())
             self.w.addItems([str(i) for i in items])
             self.w.setCurrentText(_show(value))
             self.w.currentTextChanged.connect(self.committed)
@@ -182,6 +192,78 @@ class _StageForm(_Form):
                 continue
             t[f.key] = f.value()
         return t
+
+
+class ReferenceEditor(QtWidgets.QGroupBox):
+    """The lock-in reference shared by every chain, applied live.
+
+    Fields: frequency_hz and phase_deg, plus channel and waveform for a
+    measured reference.  A reference the source announced (no ``[reference]``
+    table in the settings) is shown as such; editing it overrides it, and the
+    override is saved with the settings.
+    """
+
+    applied = QtCore.Signal(object)  # the new ReferenceSpec
+
+    def __init__(self, engine, parent=None):
+        super().__init__(parent)
+        self.engine = engine
+        ref = engine.reference
+        self.origin = ("from the settings" if engine.settings.reference is not None
+                       else "announced by the source; edit to override" if ref is not None
+                       else "none; give frequency_hz to add one")
+        keys = [("frequency_hz", "line"), ("phase_deg", "line")]
+        if ref is not None and ref.measured:
+            keys += [("channel", "line"), ("waveform", "waveform")]
+        table = ref.to_mapping() if ref is not None else {"phase_deg": 0.0}
+        grid = QtWidgets.QGridLayout(self)
+        grid.setContentsMargins(6, 4, 6, 4)
+        grid.setVerticalSpacing(2)
+        self.fields: dict[str, _Field] = {}
+        for j, (key, kind) in enumerate(keys):
+            f = _Field(key, kind, table.get(key, ""))
+            r, c = divmod(j, 2)
+            grid.addWidget(QtWidgets.QLabel(key), r, 2 * c,
+                           alignment=QtCore.Qt.AlignRight | QtCore.Qt.AlignTop)
+            grid.addWidget(f, r, 2 * c + 1, alignment=QtCore.Qt.AlignTop)
+            f.committed.connect(self.apply)
+            self.fields[key] = f
+        grid.setColumnStretch(1, 1)
+        grid.setColumnStretch(3, 1)
+        self.message = QtWidgets.QLabel()
+        self.message.setWordWrap(True)
+        grid.addWidget(self.message, grid.rowCount(), 0, 1, 4)
+        self._title()
+        _say(self.message, "")
+
+    def table(self) -> dict:
+        """The ``[reference]`` table as the fields now read (possibly invalid)."""
+        ref = self.engine.reference
+        t = {"lock_range": ref.lock_range} if ref is not None else {}
+        t.update({k: f.value() for k, f in self.fields.items() if f.text().strip()})
+        return t
+
+    def apply(self) -> bool:
+        """Send the table to the engine; mark the refused field on error."""
+        for f in self.fields.values():
+            f.set_error(None)
+        try:
+            spec = self.engine.change_reference(self.table())
+        except SettingError as e:
+            field = self.fields.get(e.field.rpartition(".")[2])
+            if field is not None:
+                field.set_error(str(e))
+            _say(self.message, "" if field is not None else str(e), error=field is None)
+            log.info("reference refused: %s", e)
+            return False
+        self.origin = "set here"
+        self._title()
+        _say(self.message, "applied to every chain (each lock-in restarts)")
+        self.applied.emit(spec)
+        return True
+
+    def _title(self) -> None:
+        self.setTitle(f"lock-in reference ({self.origin})")
 
 
 class ChainEditor(QtWidgets.QWidget):
@@ -325,8 +407,7 @@ class ChainEditor(QtWidgets.QWidget):
             form.setTitle(f"stage {j + 1}: {describe(spec)}")
 
     def _say(self, text: str, error: bool = False) -> None:
-        self.message.setText(text)
-        self.message.setStyleSheet("color: #b23a30;" if error else f"color: {palette.FOREGROUND};")
+        _say(self.message, text, error)
 
 
 class SettingsPanel(QtWidgets.QWidget):
@@ -337,13 +418,8 @@ class SettingsPanel(QtWidgets.QWidget):
         self.engine = engine
         lay = QtWidgets.QVBoxLayout(self)
         lay.setContentsMargins(0, 0, 0, 0)
-        ref = engine.reference
-        ref_text = (f"reference: {ref.frequency_hz:g} Hz" if ref is not None and ref.frequency_hz
-                    else "reference: measured" if ref is not None else "reference: none")
-        top = QtWidgets.QHBoxLayout()
-        top.addWidget(QtWidgets.QLabel(ref_text + " (set in the config file)"))
-        top.addStretch(1)
-        lay.addLayout(top)
+        self.reference = ReferenceEditor(engine)
+        lay.addWidget(self.reference)
         self.tabs = QtWidgets.QTabWidget()
         self.editors = []
         for i, ch in enumerate(engine.chains):

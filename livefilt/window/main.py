@@ -91,6 +91,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.notes.marked.connect(self._draw_marker)
         for ed in self.settings_panel.editors:
             ed.applied.connect(lambda _i: self.spectrum.refresh_responses())
+        self.settings_panel.reference.applied.connect(self.spectrum.set_reference)
 
         # left: strip (with its length), strength, spectrum
         left = QtWidgets.QSplitter(QtCore.Qt.Vertical)

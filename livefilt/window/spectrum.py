@@ -105,6 +105,7 @@ class SpectrumPanel(QtWidgets.QWidget):
             self.gain_curves.append(c)
         self._gain_for = [None] * len(engine.chains)
         self.marks = []
+        self.reference = engine.reference
         self._f = None
         self._spec = None
         self._place_marks()
@@ -144,6 +145,11 @@ class SpectrumPanel(QtWidgets.QWidget):
             self.gain_curves[k].setData(self._x(f), np.clip(g, -200, 60))
             self._gain_for[k] = ch.settings
 
+    def set_reference(self, reference) -> None:
+        """Move the modulation mark to a new reference (a ReferenceSpec)."""
+        self.reference = reference
+        self._place_marks()
+
     # -- private --------------------------------------------------------
     def _x(self, f: np.ndarray) -> np.ndarray:
         if not self.log_x:
@@ -174,7 +180,7 @@ class SpectrumPanel(QtWidgets.QWidget):
         for ln in self.marks:
             self.p.removeItem(ln)
         self.marks = []
-        ref = self.engine.reference
+        ref = self.reference
         nyq = self.rate_hz / 2
         if ref is not None and ref.frequency_hz:
             f0 = ref.frequency_hz
