@@ -15,12 +15,11 @@ loop : bool, default false
 from __future__ import annotations
 
 import threading
-import time
 import tomllib
 from pathlib import Path
 
 from livefilt.errors import RecordingError, SettingError, SourceError
-from livefilt.source import Source
+from livefilt.source import Pacer, Source
 from livefilt.wavio import WavReader
 
 __all__ = ["FileSource"]
@@ -107,16 +106,8 @@ class FileSource(Source):
     def _run(self, ring) -> None:
         r = self._reader
         piece = self._block if self.realtime else _PIECE
-        t0, sent = time.monotonic(), 0
-        while not self._stop.is_set():
-            if self.realtime:
-                wait = t0 + (sent + piece) / self.rate_hz - time.monotonic()
-                if wait > 0:
-                    self._stop.wait(min(wait, 0.05))
-                    continue
-            else:
-                while ring.free < piece and not self._stop.is_set():
-                    self._stop.wait(0.0005)
+        pacer, sent = Pacer(self.rate_hz, self.realtime, self._stop), 0
+        while pacer.wait(ring, sent, piece):
             frames = r.read(piece)
             if frames.shape[0] == 0:
                 if self.loop and r.frames:

@@ -44,12 +44,11 @@ distance_m : float, optional
 from __future__ import annotations
 
 import threading
-import time
 
 import numpy as np
 
 from livefilt.errors import SettingError
-from livefilt.source import DeviceInfo, Source
+from livefilt.source import DeviceInfo, Pacer, Source
 
 __all__ = ["SimulatedSource", "Scene"]
 
@@ -268,20 +267,10 @@ class SimulatedSource(Source):
     def _run(self, ring) -> None:
         # Samples are made in fixed 4096-frame chunks (determinism) and handed
         # over in engine-block pieces when paced, so latency stays one block.
-        t0 = time.monotonic()
         piece = self._block if self.realtime else CHUNK
         chunk, pos = self.generate(self._index, CHUNK), 0
-        while not self._stop.is_set():
-            if self.realtime:
-                wait = t0 + (self._index + piece) / self.rate_hz - time.monotonic()
-                if wait > 0:
-                    self._stop.wait(min(wait, 0.05))
-                    continue
-            else:
-                while ring.free < piece and not self._stop.is_set():
-                    self._stop.wait(0.0005)
-                if self._stop.is_set():
-                    break
+        pacer = Pacer(self.rate_hz, self.realtime, self._stop)
+        while pacer.wait(ring, self._index, piece):
             ring.write(chunk[pos:pos + piece])
             pos += piece
             self._index += piece

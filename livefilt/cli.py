@@ -11,7 +11,6 @@ import argparse
 import logging
 import os
 import sys
-import time
 
 from . import __version__
 from .errors import LivefiltError

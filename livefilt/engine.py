@@ -29,7 +29,8 @@ import numpy as np
 
 from .chain import Chain
 from .config import ChainSettings, Settings, parse_chain
-from .errors import RecordingError, SettingError, SourceError
+from .detect import ReferenceSpec
+from .errors import SettingError
 from .record import RunWriter, new_run_folder
 from .ring import Ring
 from .sections import FilterBank
@@ -98,7 +99,6 @@ class Engine:
         self.reference = self.settings.reference
         self._reference_changed = False
         if self.reference is None and src.reference_hint:
-            from .detect import ReferenceSpec
             hint = {k: v for k, v in src.reference_hint.items() if k in ("frequency_hz", "phase_deg")}
             self.reference = ReferenceSpec.from_mapping(hint, self.rate_hz, src.channels)
         self.block = self.settings.source.block
@@ -169,7 +169,6 @@ class Engine:
 
         Raises SettingError with field paths under ``reference``.
         """
-        from .detect import ReferenceSpec
         try:
             new = ReferenceSpec.from_mapping(table, self.rate_hz, self.source.channels)
         except SettingError as e:

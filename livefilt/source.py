@@ -29,12 +29,13 @@ livefilt needs neither PortAudio nor Qt.
 from __future__ import annotations
 
 import logging
+import time
 from importlib import metadata
 from typing import Any, ClassVar
 
 from .errors import SettingError, SourceUnavailable
 
-__all__ = ["Source", "DeviceInfo", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
+__all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
 
 log = logging.getLogger(__name__)
 
@@ -138,6 +139,40 @@ class Source:
                 raise SettingError(key, options[key],
                                    "unknown option for this driver; known: "
                                    + ", ".join(sorted(known)))
+
+
+class Pacer:
+    """Hand-over timing for a source that makes its own samples (simulation, file).
+
+    ``realtime``: piece ``k`` may go once the wall clock has reached the time
+    its last frame was acquired, so the engine sees a live device's rhythm.
+    Otherwise as fast as the consumer reads: wait while the ring has no room
+    (such a source never overruns the ring).
+
+    Parameters
+    ----------
+    rate_hz : float
+    realtime : bool
+    stop : threading.Event
+        Set by the source's ``stop``; every wait returns early on it.
+    """
+
+    def __init__(self, rate_hz: float, realtime: bool, stop):
+        self.rate_hz, self.realtime, self.stop = rate_hz, realtime, stop
+        self.t0 = time.monotonic()
+
+    def wait(self, ring, sent: int, piece: int) -> bool:
+        """Wait until ``piece`` frames after ``sent`` may be written; False when stopped."""
+        if self.realtime:
+            while not self.stop.is_set():
+                wait = self.t0 + (sent + piece) / self.rate_hz - time.monotonic()
+                if wait <= 0:
+                    return True
+                self.stop.wait(min(wait, 0.05))
+            return False
+        while ring.free < piece and not self.stop.is_set():
+            self.stop.wait(0.0005)
+        return not self.stop.is_set()
 
 
 def _entry_points():

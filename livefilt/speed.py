@@ -56,7 +56,6 @@ import statistics
 import subprocess
 import sys
 import tempfile
-import threading
 import time
 import tracemalloc
 
