@@ -2,11 +2,17 @@
 
 The engine writes every processed block into a :class:`Tap` (a ring of the
 last ``seconds`` of raw input and of each chain's filtered output, float32,
-plus the last detector rows of each chain).  A viewer keeps its own cursor
-and calls :meth:`Tap.read_since`; if it fell further behind than the ring
-holds, it skips ahead (a display may skip frames, never the engine samples).
-One writer (the engine thread), any number of readers; the writer never
-blocks.
+plus a ring of each chain's last detector rows).  A viewer keeps its own
+cursor and calls :meth:`Tap.read_since` and :meth:`Tap.rows_since`; if it
+fell further behind than a ring holds, it skips ahead (a display may skip
+frames, never the engine samples).  One writer (the engine thread), any
+number of readers; the writer never blocks.
+
+Detector rows are lock-free: per chain, a preallocated structured ring and two
+running counts.  The writer raises ``claimed`` before it overwrites slots and
+``committed`` after; a reader copies up to ``committed``, then reads
+``claimed`` again and drops any copied row whose slot may have been rewritten
+meanwhile (never a torn row: at worst fewer, newer rows).
 """
 
 from __future__ import annotations
@@ -16,7 +22,69 @@ from collections import deque
 
 import numpy as np
 
-__all__ = ["Tap"]
+from .detect import READING_DTYPE
+
+__all__ = ["Tap", "RowRing"]
+
+
+class RowRing:
+    """Lock-free ring of the last ``capacity`` detector rows of one chain.
+
+    Rows arrive in increasing sample ``index``; one writer, any readers.
+    """
+
+    def __init__(self, capacity: int, dtype=READING_DTYPE):
+        self.capacity = int(capacity)
+        self._rows = np.zeros(self.capacity, dtype)
+        self._ix = np.zeros(self.capacity, np.int64)  # contiguous copy of rows["index"], for search
+        self.claimed = 0    # rows whose slots the writer has started to write
+        self.committed = 0  # rows completely written (readers copy up to here)
+
+    def add(self, rows: np.ndarray) -> None:
+        """Append ``rows`` (writer thread only)."""
+        n = len(rows)
+        if n == 0:
+            return
+        cap = self.capacity
+        if n > cap:
+            rows, n = rows[-cap:], cap
+        c = self.committed
+        self.claimed = c + n  # before any slot changes
+        pos = c % cap
+        first = min(n, cap - pos)
+        self._rows[pos:pos + first] = rows[:first]
+        self._rows[:n - first] = rows[first:]
+        self._ix[pos:pos + first] = rows["index"][:first]
+        self._ix[:n - first] = rows["index"][first:]
+        self.committed = c + n  # after every slot is written
+
+    def since(self, index: int) -> np.ndarray:
+        """Copy of the held rows at sample index >= ``index``, oldest first."""
+        cap = self.capacity
+        end = self.committed
+        lo = max(0, end - cap)
+        pos, n = lo % cap, end - lo
+        # the held rows, oldest first, are slots pos.. (then 0.. after wrapping): find the first >= index
+        head = self._ix[pos:pos + n]
+        k = int(np.searchsorted(head, index))
+        if k == len(head) and n > len(head):
+            k += int(np.searchsorted(self._ix[:n - len(head)], index))
+        first = lo + k
+        out = self._take(first, end)
+        safe = self.claimed - cap  # rows before this may have been rewritten while copying
+        if first < safe:
+            out = out[min(len(out), safe - first):]
+        return out[out["index"] >= index] if len(out) and out["index"][0] < index else out
+
+    def _take(self, first: int, end: int) -> np.ndarray:
+        n = end - first
+        cap = self.capacity
+        pos = first % cap
+        a = min(n, cap - pos)
+        out = np.empty(n, self._rows.dtype)
+        out[:a] = self._rows[pos:pos + a]
+        out[a:] = self._rows[:n - a]
+        return out
 
 
 class Tap:
@@ -30,7 +98,7 @@ class Tap:
     seconds : float
         How much history the ring holds.
     rows_kept : int
-        Detector rows kept per chain.
+        Detector rows kept per chain (:meth:`rows_since`).
     """
 
     def __init__(self, rate_hz: float, names: list[str], chain_names: list[str],
@@ -42,7 +110,7 @@ class Tap:
         self._end = 0  # sample index one past the newest written frame
         self._start = 0  # sample index of the oldest frame still held
         self._lock = threading.Lock()  # guards _end/_start updates vs. readers' copies
-        self.rows = {c: deque(maxlen=rows_kept) for c in chain_names}
+        self._rows = {c: RowRing(rows_kept) for c in chain_names}
         self.gaps: deque = deque(maxlen=1000)  # (sample index, frames lost)
 
     @property
@@ -69,8 +137,16 @@ class Tap:
                 self._start = start_index
 
     def add_rows(self, chain: str, rows: np.ndarray) -> None:
-        if len(rows):
-            self.rows[chain].extend(rows)
+        """Append detector rows of ``chain`` (engine thread)."""
+        self._rows[chain].add(rows)
+
+    def rows_since(self, chain: str, index: int = 0) -> np.ndarray:
+        """Copy of ``chain``'s held detector rows at sample index >= ``index``, in order.
+
+        A reader that fell more than ``rows_kept`` rows behind gets the newest
+        rows held; never a row half-written.
+        """
+        return self._rows[chain].since(index)
 
     def read_since(self, cursor: int, max_frames: int | None = None) -> tuple[int, np.ndarray]:
         """Frames from ``cursor`` (or the oldest held, if later) to the newest.

@@ -24,6 +24,9 @@ from livefilt.engine import Engine  # noqa: E402
 from livefilt.errors import SettingError  # noqa: E402
 from livefilt.record import read_run  # noqa: E402
 from livefilt.window import MainWindow, run_window  # noqa: E402
+from livefilt.detect import READING_DTYPE  # noqa: E402
+from livefilt.taps import Tap  # noqa: E402
+from livefilt.window.spectrum import welch_db  # noqa: E402
 from livefilt.window.strip import MinMaxReducer  # noqa: E402
 
 FS = 48000.0
@@ -77,6 +80,86 @@ def test_reducer_split_equals_one_shot_and_numpy_minmax():
     assert np.array_equal(ya[:, 0:2 * m:2], cols.min(axis=2))
     assert np.array_equal(ya[:, 1:2 * m:2], cols.max(axis=2))
     assert ya[1].max() == 40.0
+
+
+def _rows(first: int, n: int, every: int = 2400) -> np.ndarray:
+    """Detector rows numbered first.. whose every field is a function of the number
+    (a row mixed from two writes would not fit)."""
+    k = np.arange(first, first + n)
+    r = np.zeros(n, READING_DTYPE)
+    r["index"] = k * every
+    r["amplitude"], r["noise"], r["snr_db"] = k * 2.0, k * 3.0, -k * 1.0
+    return r
+
+
+def _whole(rows: np.ndarray, every: int = 2400) -> bool:
+    k = rows["index"] // every
+    return (np.array_equal(rows["amplitude"], k * 2.0) and np.array_equal(rows["noise"], k * 3.0)
+            and np.array_equal(rows["snr_db"], -k * 1.0))
+
+
+def test_rows_since_any_split_in_order_and_slow_reader_gets_newest():
+    # reference: the same rows concatenated in one numpy array
+    rng = np.random.default_rng(5)
+    tap = Tap(48000.0, ["pd", "A"], ["A"], 1.0, rows_kept=500)
+    assert len(tap.rows_since("A", 0)) == 0
+    got, sent, cursor = [], 0, 0
+    while sent < 1200:
+        n = int(rng.integers(0, 40))
+        tap.add_rows("A", _rows(sent, n))
+        sent += n
+        new = tap.rows_since("A", cursor)
+        if len(new):
+            cursor = int(new["index"][-1]) + 1
+            got.append(new)
+    np.testing.assert_array_equal(np.concatenate(got), _rows(0, sent))
+    tap.add_rows("A", _rows(sent, 700))  # the reader falls 700 rows behind a 500-row ring
+    late = tap.rows_since("A", cursor)
+    np.testing.assert_array_equal(late, _rows(sent + 200, 500))
+    mid = tap.rows_since("A", int(late["index"][123]))  # from the middle of a wrapped ring
+    np.testing.assert_array_equal(mid, late[123:])
+
+
+def test_rows_since_never_tears_while_the_engine_writes():
+    import threading
+
+    tap = Tap(48000.0, ["pd", "A"], ["A"], 1.0, rows_kept=64)
+    stop = threading.Event()
+
+    def writer():
+        k = 0
+        while not stop.is_set():
+            tap.add_rows("A", _rows(k, 7))
+            k += 7
+
+    th = threading.Thread(target=writer)
+    th.start()
+    try:
+        cursor, reads, t_end = 0, 0, time.monotonic() + 0.7
+        while time.monotonic() < t_end:
+            rows = tap.rows_since("A", cursor)
+            if len(rows):
+                assert _whole(rows)  # no row mixed from two writes
+                assert np.all(np.diff(rows["index"]) == 2400)  # consecutive, in order
+                assert rows["index"][0] >= cursor
+                cursor = int(rows["index"][-1]) + 1
+                reads += 1
+    finally:
+        stop.set()
+        th.join()
+    assert reads > 10
+
+
+def test_welch_matches_scipy():
+    # reference: scipy.signal.welch (Hann, 50 % overlap, constant detrend)
+    rng = np.random.default_rng(2)
+    for n, rate in ((24001, 48000.0), (96000, 192000.0), (301, 48000.0)):
+        x = (rng.standard_normal((3, n)) + 0.4).astype(np.float32)
+        f, db = welch_db(x, rate)
+        nper = min(8192, n)
+        f_ref, p_ref = signal.welch(x.astype(float), fs=rate, window="hann", nperseg=nper)
+        np.testing.assert_allclose(f, f_ref)
+        np.testing.assert_allclose(db, 10 * np.log10(p_ref), atol=1e-3)
 
 
 def test_window_opens_and_plots_receive_data(win, qtbot, artifacts):
@@ -136,8 +219,8 @@ def test_reference_edit_moves_every_lockin_and_saves(win, qtbot, tmp_path, artif
     tap = win.engine.tap
 
     def newest_ref_hz(name):
-        rows = tap.rows[name]
-        return float(rows[-1]["ref_hz"]) if rows else None
+        rows = tap.rows_since(name, 0)
+        return float(rows[-1]["ref_hz"]) if len(rows) else None
 
     assert newest_ref_hz("A") == 1370.0
     bad = ref.fields["frequency_hz"]

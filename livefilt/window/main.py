@@ -33,8 +33,9 @@ __all__ = ["MainWindow", "run_window", "CAUTION_TEXT"]
 
 log = logging.getLogger(__name__)
 
-FRAME_MS = 30            # display tick (about 33 fps)
-SLOW_EVERY = 6           # read-out, recording info and status every 6th tick
+FRAME_MS = 30            # display tick (about 33 fps): the strip chart
+STRENGTH_EVERY = 3       # strength plots and big read-out every 3rd tick (about 10 per second)
+SLOW_EVERY = 6           # recording info and status every 6th tick
 SPECTRUM_EVERY = 8       # spectrum every 8th tick (about 4 per second)
 
 CAUTION_TEXT = (
@@ -77,10 +78,9 @@ class MainWindow(QtWidgets.QMainWindow):
         units = engine.source.units
         mains_hz = float(engine.settings.source.options.get("mains_hz", 50.0))
 
-        self.histories = {c.name: RowHistory(tap.rows[c.name], engine.rate_hz) for c in engine.chains}
+        self.histories = {c.name: RowHistory(tap, c.name) for c in engine.chains}
         self.strip = StripChart(tap, inputs, chains, units, strip_seconds)
         self.strength = StrengthPlots(self.histories, units)
-        self.strength.p_snr.setXLink(self.strip.plots[0])
         self.spectrum = SpectrumPanel(engine, inputs, mains_hz)
         self.readout = BigReadout(self.histories, units)
         self.settings_panel = SettingsPanel(engine, mains_hz)
@@ -170,11 +170,12 @@ class MainWindow(QtWidgets.QMainWindow):
         """One display tick."""
         self.frames += 1
         self.strip.refresh()
-        self.strength.refresh()
+        if self.frames % STRENGTH_EVERY == 0:
+            self.strength.refresh(*self.strip.window)
+            self.readout.refresh()
         if self.frames % SPECTRUM_EVERY == 1:
             self.spectrum.refresh()
         if self.frames % SLOW_EVERY == 0:
-            self.readout.refresh()
             self.record.refresh()
             now = time.monotonic()
             if now - self._fps_t0 >= 1.0:

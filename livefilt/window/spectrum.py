@@ -1,7 +1,10 @@
 """Spectrum of the raw input and of each chain's output, with the chains' responses.
 
-Power spectral density by Welch's method (:func:`scipy.signal.welch`, Hann
-window, 50 % overlap) over the last half second of the tap, in dB re units²/Hz.
+Power spectral density by Welch's method (Hann window, 50 % overlap, each
+segment's mean removed: what :func:`scipy.signal.welch` computes, done here
+in float32 with one batched FFT, several times faster) over the last half
+second of the tap, in dB re units²/Hz; drawn as the min/max of the bins under
+each pixel column, as the strip chart does.
 Each chain's magnitude response (:meth:`Chain.response`) is drawn over it on
 its own gain axis at the right.  Vertical marks: the modulation frequency and
 the mains harmonics.  Frequency axis log or linear.
@@ -13,13 +16,14 @@ import logging
 
 import numpy as np
 import pyqtgraph as pg
+from numpy.lib.stride_tricks import sliding_window_view
 from PySide6 import QtWidgets
-from scipy import signal
+from scipy import fft, signal
 
 from . import palette
 from .strip import fit_range
 
-__all__ = ["SpectrumPanel", "welch_db"]
+__all__ = ["SpectrumPanel", "welch_db", "column_minmax"]
 
 log = logging.getLogger(__name__)
 
@@ -32,9 +36,39 @@ def welch_db(x: np.ndarray, rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
     """(f, 10 log10 PSD) of each row of ``x`` (last axis time)."""
     nper = int(2 ** round(np.log2(rate_hz / RESOLUTION_HZ)))
     nper = max(64, min(nper, MAX_SEGMENT, x.shape[-1]))
-    f, p = signal.welch(x, fs=rate_hz, window="hann", nperseg=nper, axis=-1)
+    win = _hann(nper)
+    seg = sliding_window_view(np.asarray(x, np.float32), nper, axis=-1)[..., ::nper - nper // 2, :]
+    seg = seg - seg.mean(axis=-1, keepdims=True)
+    spec = fft.rfft(seg * win, axis=-1)
+    p = (spec.real ** 2 + spec.imag ** 2).mean(axis=-2)
+    p *= 1.0 / (rate_hz * float(np.dot(win, win)))
+    p[..., 1:nper - nper // 2] *= 2  # one-sided: every bin but DC and (even nper) Nyquist
     with np.errstate(divide="ignore"):
-        return f, 10 * np.log10(p)
+        return np.fft.rfftfreq(nper, 1.0 / rate_hz), 10 * np.log10(p)
+
+
+_HANN: dict = {}
+
+
+def _hann(n: int) -> np.ndarray:
+    if n not in _HANN:
+        _HANN[n] = signal.get_window("hann", n).astype(np.float32)
+    return _HANN[n]
+
+
+def column_minmax(x: np.ndarray, y: np.ndarray, columns: int) -> tuple[np.ndarray, np.ndarray]:
+    """Reduce a curve sampled at increasing ``x`` to (min, max) pairs per
+    ``columns`` equal steps of x (a step holding one point keeps it once)."""
+    if len(x) <= 2 * columns:
+        return x, y
+    edges = np.linspace(x[0], x[-1], columns + 1)[:-1]
+    starts = np.unique(np.searchsorted(x, edges))
+    lo = np.fmin.reduceat(y, starts)
+    hi = np.fmax.reduceat(y, starts)
+    xs = np.repeat(x[starts], 2)
+    ys = np.empty(2 * len(starts), y.dtype)
+    ys[0::2], ys[1::2] = lo, hi
+    return xs, ys
 
 
 class SpectrumPanel(QtWidgets.QWidget):
@@ -94,9 +128,9 @@ class SpectrumPanel(QtWidgets.QWidget):
                 pen = palette.raw_pen()
                 label = names[i]
             else:
-                pen = palette.chain_pen(k - len(inputs), 1.2)
+                pen = palette.chain_pen(k - len(inputs), 1.0)  # wider pens cost 2x to paint
                 label = f"{names[i]} output"
-            self.curves.append(p.plot(pen=pen, name=label))
+            self.curves.append(p.plot(pen=pen, name=label, skipFiniteCheck=True))
         self.gain_curves = []
         for k, _ in enumerate(engine.chains):
             c = pg.PlotCurveItem(pen=palette.chain_pen(k, 2.4))
@@ -166,13 +200,13 @@ class SpectrumPanel(QtWidgets.QWidget):
     def _draw_spectra(self) -> None:
         f = self._f[1:]
         x = self._x(f)
+        cols = max(200, int(self.p.vb.width()) or 800)
         top = -np.inf
         for c, s in zip(self.curves, self._spec):
-            c.setData(x, s[1:], connect="finite")
-            fin = s[1:][np.isfinite(s[1:])]
-            if len(fin):
-                top = max(top, fin.max())
-        if np.isfinite(top):
+            xs, ys = column_minmax(x, np.where(np.isfinite(s[1:]), s[1:], -400.0), cols)
+            c.setData(xs, ys)
+            top = max(top, float(ys.max()))
+        if top > -400:
             # 160 dB below the top: the quietest chain output stays in view
             fit_range(self.p, top - 160, top + 5)
 

@@ -5,12 +5,12 @@ source's units, log scale; SNR in dB) on the strip chart's time axis.
 :class:`BigReadout` shows the latest values in large type, readable from two
 metres: amplitude, noise and SNR per chain, and A minus B in dB.
 
-Both read only ``tap.rows`` (newest rows first, never the whole deque).
+Both read the tap's detector rows through :meth:`Tap.rows_since` (only the
+rows new since the last look; lock-free).
 """
 
 from __future__ import annotations
 
-import itertools
 import logging
 import math
 
@@ -28,55 +28,51 @@ log = logging.getLogger(__name__)
 
 
 class RowHistory:
-    """Recent detector rows of one chain as arrays (time, amplitude, noise, SNR).
+    """Recent detector rows of one chain as arrays (time, amplitude, its dB, noise, SNR).
 
     Parameters
     ----------
-    rows : deque of detector rows (written by the engine thread)
-    rate_hz : float
+    tap : livefilt.taps.Tap
+    chain : str
     keep_s : float
         History kept, seconds.
     """
 
-    _PEEK = 256  # newest rows looked at per refresh; older unseen ones are skipped
-
-    def __init__(self, rows, rate_hz: float, keep_s: float = 60.0):
-        self.rows = rows
-        self.rate_hz = rate_hz
+    def __init__(self, tap, chain: str, keep_s: float = 60.0):
+        self.tap = tap
+        self.chain = chain
+        self.rate_hz = tap.rate_hz
         self.keep_s = keep_s
-        self.t = np.zeros(0)
-        self.amp = np.zeros(0)
-        self.noise = np.zeros(0)
-        self.snr = np.zeros(0)
+        self.t = self.amp = self.amp_db = self.noise = self.snr = np.zeros(0)
         self.last_index = -1
         self.latest = None
 
     def update(self) -> bool:
         """Take rows newer than the last seen; True if any came."""
-        try:  # the engine may append while we look; try again next frame
-            tail = list(itertools.islice(reversed(self.rows), self._PEEK))
-        except RuntimeError:
+        new = self.tap.rows_since(self.chain, self.last_index + 1)
+        if not len(new):
             return False
-        new = [r for r in tail if int(r["index"]) > self.last_index]
-        if not new:
-            return False
-        new.reverse()
-        arr = np.array(new)
         self.latest = new[-1]
-        self.last_index = int(arr["index"][-1])
-        self.t = np.append(self.t, arr["index"] / self.rate_hz)
-        self.amp = np.append(self.amp, arr["amplitude"].astype(float))
-        self.noise = np.append(self.noise, arr["noise"].astype(float))
-        self.snr = np.append(self.snr, arr["snr_db"].astype(float))
-        keep = self.t >= self.t[-1] - self.keep_s
-        if not keep[0]:
-            self.t, self.amp, self.noise, self.snr = (a[keep] for a in
-                                                      (self.t, self.amp, self.noise, self.snr))
+        self.last_index = int(new["index"][-1])
+        amp = new["amplitude"].astype(float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            amp_db = np.where(amp > 0, 20 * np.log10(amp), np.nan)
+        t = new["index"] / self.rate_hz
+        keep = np.searchsorted(self.t, t[-1] - self.keep_s) if len(self.t) else 0
+        self.t = np.concatenate([self.t[keep:], t])
+        self.amp = np.concatenate([self.amp[keep:], amp])
+        self.amp_db = np.concatenate([self.amp_db[keep:], amp_db])
+        self.noise = np.concatenate([self.noise[keep:], new["noise"].astype(float)])
+        self.snr = np.concatenate([self.snr[keep:], new["snr_db"].astype(float)])
         return True
 
 
 class StrengthPlots(pg.GraphicsLayoutWidget):
-    """Amplitude and SNR (both in dB) of every chain versus time."""
+    """Amplitude and SNR (both in dB) of every chain versus time.
+
+    The time window is set by :meth:`show_window` (the strip chart's), not by
+    a view link: a link would repaint these plots at the strip's frame rate.
+    """
 
     def __init__(self, histories: dict[str, RowHistory], units: str, parent=None):
         super().__init__(parent=parent)
@@ -98,22 +94,26 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         self.p_amp.addLegend(offset=(6, -4), labelTextSize="9pt")
         self.curves = {}
         for k, name in enumerate(histories):
-            self.curves[name] = (self.p_amp.plot(pen=palette.chain_pen(k, 2.0), name=name),
-                                 self.p_snr.plot(pen=palette.chain_pen(k, 2.0)))
+            # clipped to the view: wide and dashed pens are costly, so only the shown part is stroked
+            self.curves[name] = (self.p_amp.plot(pen=palette.chain_pen(k, 2.0), name=name,
+                                                 clipToView=True),
+                                 self.p_snr.plot(pen=palette.chain_pen(k, 2.0), clipToView=True))
         self._markers: list[tuple[float, list]] = []
+        self._window = None
 
-    def refresh(self) -> None:
-        """Draw new rows; fit the y ranges to what the time window shows."""
+    def refresh(self, t0: float | None = None, t1: float | None = None) -> None:
+        """Draw new rows; show times ``t0`` to ``t1`` (s) and fit the y ranges to them."""
         changed = False
         for name, h in self.histories.items():
             if not h.update():
                 continue
             changed = True
-            with np.errstate(divide="ignore", invalid="ignore"):
-                amp = np.where(h.amp > 0, 20 * np.log10(h.amp), np.nan)
             c_amp, c_snr = self.curves[name]
-            c_amp.setData(h.t, amp, connect="finite")
+            c_amp.setData(h.t, h.amp_db, connect="finite")
             c_snr.setData(h.t, h.snr, connect="finite")
+        if t0 is not None and (t0, t1) != self._window:
+            self._window = (t0, t1)
+            self.p_snr.setXRange(t0, t1, padding=0)
         if changed:
             self._fit()
 

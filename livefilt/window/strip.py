@@ -196,9 +196,11 @@ class StripChart(pg.GraphicsLayoutWidget):
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
-                p.getAxis("bottom").setStyle(showValues=False)
-            for _ in streams:
-                self.curves.append(p.plot(pen=pg.mkPen(pen, width=1)))
+                p.hideAxis("bottom")  # a scrolling axis is redrawn every frame: keep only the last
+            for _ in streams:  # bare curve items: PlotDataItem's extra work is not needed here
+                c = pg.PlotCurveItem(pen=pg.mkPen(pen, width=1), skipFiniteCheck=True)
+                p.addItem(c)
+                self.curves.append(c)
             self.plots.append(p)
         self.plots[-1].setLabel("bottom", "time since start (s)")
         self._curve_plot = [p for p, (_, _, st) in zip(self.plots, rows) for _ in st]
@@ -206,6 +208,7 @@ class StripChart(pg.GraphicsLayoutWidget):
         self.reducer: MinMaxReducer | None = None
         self._cursor = 0
         self.drawn_index = 0  # sample index one past the newest sample drawn
+        self.window = (0.0, self.seconds)  # time span shown, seconds
 
     # -- public ---------------------------------------------------------
     def set_seconds(self, seconds: float) -> None:
@@ -222,6 +225,8 @@ class StripChart(pg.GraphicsLayoutWidget):
             r = self.reducer = MinMaxReducer(len(self.streams), tap.rate_hz, self.seconds, want_cols)
             self._cursor = max(0, tap.end_index - int(self.seconds * tap.rate_hz))
         start, data = tap.read_since(self._cursor)
+        if not data.shape[1] and r.end_index == self.drawn_index and r.newest is not None:
+            return  # nothing new: leave every item as it is (no repaint)
         if data.shape[1]:
             self._cursor = start + data.shape[1]
             r.push(start, data[self.streams])
@@ -230,8 +235,9 @@ class StripChart(pg.GraphicsLayoutWidget):
         t0 = max(0.0, t_end - self.seconds)
         shown = x >= t0 - r.spc / tap.rate_hz
         x, y = x[shown], y[:, shown]
+        connect = "all" if np.isfinite(y).all() else "finite"
         for k, c in enumerate(self.curves):
-            c.setData(x, y[k], connect="finite")
+            c.setData(x, y[k], connect=connect)
         ranges: dict = {}
         for k, p in enumerate(self._curve_plot):
             if len(x) and np.isfinite(y[k]).any():
@@ -241,7 +247,8 @@ class StripChart(pg.GraphicsLayoutWidget):
         for p in self.plots:
             if id(p) in ranges:
                 fit_range(p, *ranges[id(p)])
-        self.plots[0].setXRange(t0, max(t_end, self.seconds), padding=0)
+        self.window = (t0, max(t_end, self.seconds))
+        self.plots[0].setXRange(*self.window, padding=0)
         self.drawn_index = r.end_index
         self._prune_markers(t_end - 60.0)
 
