@@ -282,7 +282,8 @@ class ChainEditor(QtWidgets.QWidget):
         self.message = QtWidgets.QLabel()
         self.message.setWordWrap(True)
         lay.addWidget(self.message)
-        self.stage_box = QtWidgets.QVBoxLayout()
+        self.stage_box = QtWidgets.QGridLayout()  # stages and detector, two to a row
+        self.stage_box.setSpacing(4)
         lay.addLayout(self.stage_box)
         add = QtWidgets.QHBoxLayout()
         self.new_type = QtWidgets.QComboBox()
@@ -293,8 +294,6 @@ class ChainEditor(QtWidgets.QWidget):
         add.addWidget(btn)
         add.addStretch(1)
         lay.addLayout(add)
-        self.detector_holder = QtWidgets.QVBoxLayout()
-        lay.addLayout(self.detector_holder)
         lay.addStretch(1)
         self.stages: list[_StageForm] = []
         self.detector: _Form | None = None
@@ -313,7 +312,7 @@ class ChainEditor(QtWidgets.QWidget):
             form = _StageForm(j, st)
             form.changed.connect(self.apply)
             form.remove.connect(self._remove)
-            self.stage_box.addWidget(form)
+            self.stage_box.addWidget(form, *divmod(j, 2))
             self.stages.append(form)
         if self.detector is not None:
             self.detector.setParent(None)
@@ -329,7 +328,7 @@ class ChainEditor(QtWidgets.QWidget):
         if "noise_window_s" in det:
             self.detector.add("noise_window_s", "line", det["noise_window_s"])
         self.detector.changed.connect(self.apply)
-        self.detector_holder.addWidget(self.detector)
+        self.stage_box.addWidget(self.detector, *divmod(len(self.stages), 2))
         self._titles()
         self._say("")
 

@@ -36,7 +36,7 @@ log = logging.getLogger(__name__)
 FRAME_MS = 30            # display tick (about 33 fps): the strip chart
 STRENGTH_EVERY = 3       # strength plots and big read-out every 3rd tick (about 10 per second)
 SLOW_EVERY = 6           # recording info and status every 6th tick
-SPECTRUM_EVERY = 8       # spectrum every 8th tick (about 4 per second)
+SPECTRUM_EVERY = 10      # spectrum every 10th tick (about 3 per second)
 
 CAUTION_TEXT = (
     "Safety: the infrared LED or laser that lights the target can harm eyes with no visible "

@@ -17,7 +17,7 @@ import logging
 import numpy as np
 import pyqtgraph as pg
 from numpy.lib.stride_tricks import sliding_window_view
-from PySide6 import QtWidgets
+from PySide6 import QtCore, QtWidgets
 from scipy import fft, signal
 
 from . import palette
@@ -99,6 +99,8 @@ class SpectrumPanel(QtWidgets.QWidget):
         self.log_box.toggled.connect(self.set_log)
         bar.addWidget(self.log_box)
         bar.addStretch(1)
+        self.legend = QtWidgets.QLabel()  # above the plot: a legend inside would hide curves
+        bar.addWidget(self.legend)
         lay.addLayout(bar)
         self.plot = pg.PlotWidget()
         lay.addWidget(self.plot, 1)
@@ -109,7 +111,6 @@ class SpectrumPanel(QtWidgets.QWidget):
         p.setLabel("bottom", "frequency (Hz)")
         p.getAxis("left").setWidth(70)
         p.getAxis("left").enableAutoSIPrefix(False)
-        p.addLegend(offset=(-6, 4), labelTextSize="9pt")
         p.disableAutoRange()
         # a second view box for the chains' gain, sharing x, with its own axis
         self.gain_vb = pg.ViewBox()
@@ -131,6 +132,9 @@ class SpectrumPanel(QtWidgets.QWidget):
                 pen = palette.chain_pen(k - len(inputs), 1.0)  # wider pens cost 2x to paint
                 label = f"{names[i]} output"
             self.curves.append(p.plot(pen=pen, name=label, skipFiniteCheck=True))
+        self.legend.setText("   ".join(_key(c.opts["pen"], name) for c, name in
+                                        zip(self.curves, [c.name() for c in self.curves]))
+                            + "  (wide: chain gain, right axis)")
         self.gain_curves = []
         for k, _ in enumerate(engine.chains):
             c = pg.PlotCurveItem(pen=palette.chain_pen(k, 2.4))
@@ -236,6 +240,13 @@ class SpectrumPanel(QtWidgets.QWidget):
     def _sync_views(self) -> None:
         self.gain_vb.setGeometry(self.p.vb.sceneBoundingRect())
         self.gain_vb.linkedViewChanged(self.p.vb, self.gain_vb.XAxis)
+
+
+def _key(pen, name: str) -> str:
+    """Rich-text legend entry: a line sample in the pen's colour and style, then the name."""
+    pen = pg.mkPen(pen)
+    sample = {QtCore.Qt.SolidLine: "——", QtCore.Qt.DashLine: "- - -"}.get(pen.style(), "· · ·")
+    return f'<b style="color:{pen.color().name()}">{sample}</b> {name}'
 
 
 def _log_ticks(nyq: float) -> list:

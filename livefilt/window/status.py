@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from PySide6 import QtWidgets
+from PySide6 import QtGui, QtWidgets
 
 __all__ = ["StatusLine"]
 
@@ -20,6 +20,12 @@ class StatusLine(QtWidgets.QStatusBar):
         self.load = QtWidgets.QLabel()
         self.fps = QtWidgets.QLabel()
         self.note = QtWidgets.QLabel()
+        # fixed sizes: a changing text then repaints its label alone, not the window's layout
+        for w, sample in ((self.losses, "overruns 99999, dropped 9999999999 samples"),
+                          (self.load, "processing 100.0 % of real time"),
+                          (self.fps, "display 999 fps")):
+            fm = QtGui.QFontMetrics(w.font())
+            w.setFixedSize(fm.horizontalAdvance(sample) + 8, fm.height() + 4)
         for w in (self.source, self.rate, self.losses, self.load, self.fps):
             self.addWidget(w)
         self.addPermanentWidget(self.note)

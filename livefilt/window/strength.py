@@ -180,13 +180,14 @@ class BigReadout(QtWidgets.QFrame):
                 lab.setStyleSheet(f"color: {colour};")
                 lab.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
                 sample = "−888.8 dB" if j == 3 else "888.8 m" + units
-                lab.setMinimumWidth(QtGui.QFontMetrics(lab.font()).horizontalAdvance(sample) + 6)
+                _fix_size(lab, sample)
                 grid.addWidget(lab, 1 + k, j)
                 row.append(lab)
             self.labels[name] = row
         self.diff = QtWidgets.QLabel("")
         self.diff.setFont(palette.big_font(20))
         self.diff.setStyleSheet(f"color: {palette.FOREGROUND};")
+        _fix_size(self.diff, "A − B:  +888.88 dB")
         grid.addWidget(self.diff, 1 + len(histories), 0, 1, 4)
         names = list(histories)
         self._pair = names[:2] if len(names) >= 2 else None
@@ -206,3 +207,10 @@ class BigReadout(QtWidgets.QFrame):
         if self._pair and all(amps.get(n, 0) > 0 for n in self._pair):
             a, b = self._pair
             self.diff.setText(f"{a} − {b}:  {20 * math.log10(amps[a] / amps[b]):+.2f} dB")
+
+
+def _fix_size(label: QtWidgets.QLabel, sample: str) -> None:
+    """Fix a changing label's size to fit ``sample``: a fixed-size widget's new
+    text repaints the label alone, not the whole window's layout."""
+    fm = QtGui.QFontMetrics(label.font())
+    label.setFixedSize(fm.horizontalAdvance(sample) + 6, fm.height() + 4)
