@@ -11,7 +11,7 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``sos_bank(sos, zi, bounds, last, channels, data, y)``: every chain's cascade
+  - ``sos_bank(sos, zi, bounds, last, data, channels, y)``: every chain's cascade
     on one block of frames (n, channels) in one call.
   - ``mix_internal_rows(x, offset, fracs, cycles_per_sample, phase_rad, b0,
     b1, a1, zi, first, every, rows)``: dual-phase mixer on an internal reference,
@@ -131,7 +131,7 @@ def sos_block(sos, zi, x, y):
 
 
 @_jit
-def sos_bank(sos, zi, bounds, last, channels, data, y):
+def sos_bank(sos, zi, bounds, last, data, channels, y):
     """Several cascades on one block of frames, in one call.
 
     Cascade ``c`` is sections ``bounds[c]:bounds[c + 1]`` of ``sos``/``zi``
@@ -142,7 +142,8 @@ def sos_bank(sos, zi, bounds, last, channels, data, y):
     within a cascade the loop and the order of terms are those of
     :func:`sos_block`, so every output is bit-identical to ``sosfilt``.
     The arguments that do not change per block come first, so a caller can
-    bind them once (``functools.partial``).
+    bind them once (``functools.partial``).  Returns nothing: boxing a
+    returned array costs about 10 % of a 256-sample call.
     """
     n = data.shape[0]
     nc = channels.shape[0]
@@ -272,8 +273,8 @@ def _build() -> _Kernels:
     x = np.zeros(4)
     one = np.array([[1.0, 0, 0, 1, 0, 0]])
     sos_block(one, np.zeros((1, 2)), x, np.zeros(4))
-    sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.zeros(1), np.array([1]),
-             np.zeros((4, 2), np.float32), np.zeros((1, 4)))
+    sos_bank(one, np.zeros((1, 2)), np.array([0, 1]), np.zeros(1),
+             np.zeros((4, 2), np.float32), np.array([1]), np.zeros((1, 4)))
     mix_internal_rows(x, 4094, np.zeros(2), 0.1, 0.0, 0.5, 0.1, -0.4, np.zeros((1, 2, 1)), 0, 1,
                       np.zeros((2, 4)))
     return _Kernels()

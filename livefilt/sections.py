@@ -196,7 +196,7 @@ class FilterBank:
         """
         call = self._call
         if call is not None:
-            call(channels, data, out)
+            call(data, channels, out)
         elif data.shape[0]:
             for i, f in enumerate(self.filters):
                 f.process(data[:, channels[i]], out=out[i])
