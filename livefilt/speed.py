@@ -119,13 +119,17 @@ def window_rows(measure_window, quick: bool = False) -> list[dict]:
     192 kHz and both chains, and sample-to-screen latency at 48 kHz with
     256-sample blocks.  ``measure_window`` is ``livefilt.window.bench.measure_window``
     (passed in by the CLI, so this module never imports Qt)."""
-    seconds = 4.0 if quick else 10.0
-    fast = measure_window(seconds, 192000.0, block=256, strip_s=10.0)
+    seconds, runs = (4.0, 1) if quick else (8.0, 3)
+    # the median run by drawing CPU (a shared machine swings a few points)
+    fast_runs = sorted((measure_window(seconds, 192000.0, block=256, strip_s=10.0)
+                        for _ in range(runs)), key=lambda r: r["cpu_fraction"])
+    fast = fast_runs[len(fast_runs) // 2]
     slow = measure_window(seconds, 48000.0, block=256, strip_s=10.0)
     return [
         _row("window at 192 kHz, 10 s strip, chains A and B: frames per second", fast["fps"], "fps",
              ">= 30", fast["fps"] >= 30),
-        _row("window at 192 kHz, 10 s strip: drawing CPU, share of one core", 100 * fast["cpu_fraction"],
+        _row(f"window at 192 kHz, 10 s strip: drawing CPU, share of one core (median of {runs})",
+             100 * fast["cpu_fraction"],
              "%", "< 25", fast["cpu_fraction"] < 0.25),
         _row("window at 192 kHz: samples dropped while drawing", fast["dropped"], "", "0",
              fast["dropped"] == 0),
