@@ -9,17 +9,27 @@ import os
 
 import pytest
 
-__all__ = ["require", "strict"]
+__all__ = ["require", "need_module", "strict"]
 
 
 def strict() -> bool:
     return bool(os.environ.get("LIVEFILT_REQUIRE_SYSTEM") or os.environ.get("CI"))
 
 
-def require(ok: bool, reason: str) -> None:
-    """Skip (locally) or fail (in CI) unless ``ok``."""
+def require(ok: bool, reason: str, module_level: bool = False) -> None:
+    """Skip (locally) or fail (in CI) unless ``ok``; ``module_level`` for use
+    at a test module's top."""
     if ok:
         return
     if strict():
-        pytest.fail(f"system part missing in CI: {reason}")
-    pytest.skip(reason)
+        pytest.fail(f"system part missing in CI: {reason}", pytrace=False)
+    pytest.skip(reason, allow_module_level=module_level)
+
+
+def need_module(name: str, hint: str):
+    """Import ``name`` for a test module, or skip it (locally) / fail it (in CI)."""
+    import importlib
+    try:
+        return importlib.import_module(name)
+    except ImportError as e:
+        require(False, f"{name} not importable ({e}): {hint}", module_level=True)

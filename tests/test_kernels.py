@@ -13,13 +13,14 @@ import pytest
 from scipy import signal
 
 from livefilt import kernels
+from tests.system import require
 from livefilt.config import demo_config, parse_config
 from livefilt.detect import DetectorSpec, ReferenceSpec, make_detector
 from livefilt.engine import Engine
 from livefilt.sections import FilterBank, SosFilter
 
 FS = 48000.0
-pytestmark = pytest.mark.skipif(kernels.compiled() is None, reason="numba kernels unavailable")
+require(kernels.compiled() is not None, "numba kernels unavailable (pip install numba)", module_level=True)
 
 
 def _splits(n, seed):

@@ -14,8 +14,10 @@ import numpy as np
 import pytest
 from scipy import signal
 
-pytest.importorskip("pyqtgraph")
-pytest.importorskip("PySide6")
+from tests.system import need_module  # noqa: E402
+
+need_module("pyqtgraph", "pip install 'livefilt[window]'")
+need_module("PySide6", "pip install 'livefilt[window]'")
 
 from PySide6 import QtCore  # noqa: E402
 
