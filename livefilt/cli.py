@@ -189,7 +189,7 @@ def main(argv=None) -> int:
     logging.basicConfig(level=logging.INFO if args.verbose else logging.WARNING,
                         format="livefilt: %(message)s")
     if args.command is None:
-        args = parser.parse_args(["live"] + (argv or sys.argv[1:]))
+        args = parser.parse_args(list(sys.argv[1:] if argv is None else argv) + ["live"])
     try:
         return args.func(args)
     except LivefiltError as e:
