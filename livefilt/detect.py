@@ -24,7 +24,8 @@ positive phase.  The mixer multiplies by ``sqrt(2) cos(theta)`` and
 ``noise`` is the RMS fluctuation of the output across the signal's direction:
 the standard deviation of (I, Q) along the unit vector perpendicular to their
 mean over the last ``noise_window_s`` of output rows (sample variance, ddof 1;
-fewer rows than a window: the rows there are; NaN before two rows; with a zero
+fewer rows than a window: the rows there are; NaN before two rows, and NaN
+while the output low-pass settles after a start, 99.9 % of a step; with a zero
 mean, ``sqrt((var(I) + var(Q)) / 2)``).  A target moved toward or away from the
 sensor changes the amplitude along the mean direction only, so the noise
 read-out does not mistake motion for noise.  Noise is isotropic in the (I, Q)
@@ -335,6 +336,21 @@ class _Detector:
         """Forget all state (filters start from zero, the noise window empties)."""
         self.zi = np.zeros((self.n_sections, self._channels, 1))
         self.stats = _WindowStats(self.window_rows, self._stat_channels)
+        self._quiet_until: int | None = None
+
+    def _settling(self, index: np.ndarray) -> int:
+        """How many of the rows at ``index`` fall while the output low-pass is
+        still settling after a start (99.9 %, REFERENCES row 3c).
+
+        Their noise and SNR read NaN and they stay out of the noise window:
+        the output's rise from zero is the detector's own transient, not noise.
+        Counted from the first row's sample index, so any block split agrees.
+        """
+        if self._quiet_until is None:
+            if not len(index):
+                return 0
+            self._quiet_until = int(index[0]) + int(np.ceil(self.settling_s(0.999) * self.fs))
+        return int(np.searchsorted(index, self._quiet_until))
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
@@ -490,14 +506,18 @@ class LockIn(_Detector):
         # isotropic noise has the same variance in every direction, so for
         # white input this still tends to e * sqrt(ENBW).  The third stream
         # (I + Q)/sqrt 2 gives the covariance: var = (vI + vQ)/2 + cov.
-        mean, var = self.stats.update(np.stack((i_rows, q_rows, (i_rows + q_rows) * _SQRT_HALF), axis=1))
-        mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
-        cov = var[:, 2] - 0.5 * (vi + vq)
-        m2 = mi * mi + mq * mq
-        with np.errstate(invalid="ignore", divide="ignore"):
-            across = np.where(m2 > 0, (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
-                              0.5 * (vi + vq))
-        rows["noise"] = np.sqrt(np.maximum(across, 0.0))
+        k = self._settling(rows["index"])
+        rows["noise"][:k] = np.nan
+        if k < len(rows):
+            i_s, q_s = i_rows[k:], q_rows[k:]
+            mean, var = self.stats.update(np.stack((i_s, q_s, (i_s + q_s) * _SQRT_HALF), axis=1))
+            mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
+            cov = var[:, 2] - 0.5 * (vi + vq)
+            m2 = mi * mi + mq * mq
+            with np.errstate(invalid="ignore", divide="ignore"):
+                across = np.where(m2 > 0, (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
+                                  0.5 * (vi + vq))
+            rows["noise"][k:] = np.sqrt(np.maximum(across, 0.0))
         rows["snr_db"] = _snr_db(rows["amplitude"], rows["noise"])
         rows["ref_hz"] = ref_hz
         rows["locked"] = True if locked is None else locked
@@ -557,9 +577,13 @@ class RmsDetector(_Detector):
         rows["quadrature"] = 0.0
         rows["amplitude"] = amp
         rows["phase_deg"] = np.nan
-        mean, var = self.stats.update(amp[:, None])
-        rows["noise"] = np.sqrt(var[:, 0])
-        rows["snr_db"] = _snr_db(mean[:, 0], rows["noise"])
+        k = self._settling(rows["index"])
+        rows["noise"][:k] = np.nan
+        rows["snr_db"][:k] = np.nan
+        if k < len(rows):
+            mean, var = self.stats.update(amp[k:, None])
+            rows["noise"][k:] = np.sqrt(var[:, 0])
+            rows["snr_db"][k:] = _snr_db(mean[:, 0], rows["noise"][k:])
         rows["ref_hz"] = np.nan
         rows["locked"] = True
         return rows

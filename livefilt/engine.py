@@ -98,6 +98,7 @@ class Engine:
         self.settings = settings.at_rate(self.rate_hz, channels=src.channels)
         self.reference = self.settings.reference
         self._reference_changed = False
+        self._settled = False
         if self.reference is None and src.reference_hint:
             hint = {k: v for k, v in src.reference_hint.items() if k in ("frequency_hz", "phase_deg")}
             self.reference = ReferenceSpec.from_mapping(hint, self.rate_hz, src.channels)
@@ -316,6 +317,13 @@ class Engine:
             n = max(0, self._stop_at - start)
             data = data[:n]
         nch = data.shape[1]
+        if not self._settled and n:
+            # Start as an instrument that has been on for a while: each chain's
+            # filters in their steady state for the first sample, so a large DC
+            # level (sunlight) does not ring through the band-pass at start.
+            for c in self.chains:
+                c.filter.settle(float(data[0, c.channel]))
+            self._settled = True
         self._bank.process(data, self._inputs, self._y)
         rows_all = []
         for k, c in enumerate(self.chains):

@@ -284,9 +284,9 @@ def test_rms_detector_reads_sine_rms():
 
 
 def test_noise_and_snr_never_raise_on_silence():
-    det = lockin(out=1)
+    det = lockin(tau=0.001, out=1)  # settles (99.9 %) within 627 samples (REFERENCES row 3c)
     rows = det.process(np.zeros(1000), 0)
-    assert math.isnan(rows[0]["noise"])  # fewer than two rows
+    assert math.isnan(rows[0]["noise"])  # still settling
     assert rows[-1]["noise"] == 0.0
     assert math.isnan(rows[-1]["snr_db"])
     det.reset()
@@ -297,13 +297,18 @@ def test_noise_window_uses_what_there_is():
     # sample variance (ddof 1) of the rows so far, then of the last window only
     det = make_detector(DetectorSpec.from_mapping(
         {"type": "rms", "time_constant_s": 2 / FS, "noise_window_s": 10 / FS}, FS), None, FS, 1)
-    x = np.random.default_rng(3).normal(size=40)
+    # rows while the output low-pass settles (99.9 %, REFERENCES row 3c) read NaN
+    # and stay out of the window
+    k = int(np.ceil(det.settling_s(0.999) * FS))
+    x = np.random.default_rng(3).normal(size=k + 40)
     rows = det.process(x, 0)
     amp = rows["amplitude"]
-    assert rows["noise"][5] == pytest.approx(np.std(amp[:6], ddof=1), rel=1e-9)
-    assert rows["noise"][30] == pytest.approx(np.std(amp[21:31], ddof=1), rel=1e-9)
-    mean = np.mean(amp[21:31])
-    assert rows["snr_db"][30] == pytest.approx(20 * np.log10(mean / rows["noise"][30]))
+    assert np.isnan(rows["noise"][:k]).all() and np.isnan(rows["snr_db"][:k]).all()
+    assert math.isnan(rows["noise"][k])  # one row: no variance yet
+    assert rows["noise"][k + 5] == pytest.approx(np.std(amp[k:k + 6], ddof=1), rel=1e-9)
+    assert rows["noise"][k + 30] == pytest.approx(np.std(amp[k + 21:k + 31], ddof=1), rel=1e-9)
+    mean = np.mean(amp[k + 21:k + 31])
+    assert rows["snr_db"][k + 30] == pytest.approx(20 * np.log10(mean / rows["noise"][k + 30]))
 
 
 # -- settings ----------------------------------------------------------------

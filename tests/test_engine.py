@@ -126,3 +126,19 @@ def test_change_reference_applies_to_every_chain_and_is_saved():
     for name in rows:
         assert np.all(rows[name]["ref_hz"] == 1371.5)
     assert e.current_settings().reference.frequency_hz == 1371.5
+
+
+def test_start_without_a_dc_step_transient():
+    # The chains start in the steady state for the first sample (scipy.signal.sosfilt_zi
+    # times that level): the high-passed output of a constant input is zero from the
+    # first sample on (closed form: a high-pass has zero DC gain).
+    class ConstantSource(BurstSource):
+        def start(self, ring):
+            ring.write(np.full((4800, 2), 0.8, np.float32))
+            ring.close()
+
+    e = Engine(fast_demo(), source=ConstantSource())
+    outs = []
+    e.listeners.append(lambda eng, start, raw, ys, rows: outs.append(ys[0, :len(raw)].copy()))
+    e.run()
+    assert np.max(np.abs(np.concatenate(outs))) < 1e-9
