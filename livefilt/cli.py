@@ -65,9 +65,7 @@ def cmd_run(args) -> int:
         print("\nstopping…", file=sys.stderr)
     finally:
         engine.stop()
-    if engine.error is not None:
-        if isinstance(engine.error, LivefiltError):
-            raise engine.error
+    if engine.error is not None:  # a LivefiltError is printed in one line by main()
         raise engine.error
     if args.out and engine.stats.frames:
         print(f"saved {engine.stats.frames} frames ({engine.stats.frames / engine.rate_hz:.2f} s) "

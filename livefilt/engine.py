@@ -31,7 +31,7 @@ from .chain import Chain
 from .config import ChainSettings, Settings, parse_chain
 from .detect import ReferenceSpec
 from .errors import SettingError
-from .record import RunWriter, new_run_folder
+from .record import RunWriter, make_marker, new_run_folder
 from .ring import Ring
 from .sections import FilterBank
 from .source import Source, load_driver
@@ -190,14 +190,11 @@ class Engine:
     def add_marker(self, distance_m: float | None, note: str = "") -> dict:
         """Mark the current acquisition time with the target distance and a note."""
         t = self.stats.index / self.rate_hz
-        m = {"time_s": round(t, 6)}
-        if distance_m is not None:
-            m["distance_m"] = float(distance_m)
-        if note:
-            m["note"] = note
         with self._rec_lock:
             if self.recorder is not None:
                 m = self.recorder.add_marker(t, distance_m, note)
+            else:
+                m = make_marker(t, distance_m, note)
         self.stats.marks.append(m)
         return m
 

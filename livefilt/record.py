@@ -36,7 +36,7 @@ from .errors import RecordingError
 from .tomlout import dumps
 from .wavio import WavWriter, read_wav
 
-__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder"]
+__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
 
 RESULT_COLUMNS = ("time_s", "chain", "amplitude", "phase_deg", "in_phase", "quadrature",
                   "noise", "snr_db", "ref_hz", "locked", "sample_index")
@@ -119,11 +119,7 @@ class RunWriter:
 
     def add_marker(self, time_s: float, distance_m: float | None, note: str = "") -> dict:
         """Record a distance marker at acquisition time ``time_s``; saved at once."""
-        m = {"time_s": round(float(time_s), 6), "utc": _utc_now().isoformat(timespec="seconds")}
-        if distance_m is not None:
-            m["distance_m"] = float(distance_m)
-        if note:
-            m["note"] = note
+        m = make_marker(time_s, distance_m, note)
         self.markers.append(m)
         self._write_meta()
         return m
@@ -169,6 +165,17 @@ class RunWriter:
         tmp = self.folder / "run.toml.tmp"
         tmp.write_text(text, encoding="utf-8")
         os.replace(tmp, self.folder / "run.toml")
+
+
+def make_marker(time_s: float, distance_m: float | None, note: str = "") -> dict:
+    """A distance marker as stored in run.toml: acquisition time, wall-clock UTC,
+    and the distance and note when given."""
+    m = {"time_s": round(float(time_s), 6), "utc": _utc_now().isoformat(timespec="seconds")}
+    if distance_m is not None:
+        m["distance_m"] = float(distance_m)
+    if note:
+        m["note"] = note
+    return m
 
 
 def _g(x) -> str:
