@@ -19,8 +19,8 @@ import tomllib
 from pathlib import Path
 
 from livefilt.errors import RecordingError, SettingError, SourceError
-from livefilt.source import Pacer, Source
-from livefilt.wavio import WavReader
+from livefilt.acquire.source import Pacer, Source
+from livefilt.runs.wavio import WavReader
 
 __all__ = ["FileSource"]
 
@@ -63,7 +63,7 @@ class FileSource(Source):
 
     @classmethod
     def probe(cls):
-        from livefilt.source import DeviceInfo
+        from livefilt.acquire.source import DeviceInfo
         return [DeviceInfo(name="any .wav file or run folder",
                            note="livefilt run --input PATH [--fast]")]
 

@@ -52,9 +52,9 @@ from typing import Any
 import numpy as np
 
 from livefilt.errors import SettingError, SourceError, SourceUnavailable
-from livefilt.source import DeviceInfo, Source
+from livefilt.acquire.source import DeviceInfo, Source
 
-from . import wire
+from livefilt.drivers import wire
 
 __all__ = ["SerialSource", "DEFAULT_BAUD"]
 

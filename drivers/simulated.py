@@ -48,7 +48,7 @@ import threading
 import numpy as np
 
 from livefilt.errors import SettingError
-from livefilt.source import DeviceInfo, Pacer, Source
+from livefilt.acquire.source import DeviceInfo, Pacer, Source
 
 __all__ = ["SimulatedSource", "Scene"]
 

@@ -71,7 +71,7 @@ out (analog phase shift, sub-sample delay) becomes
 ``start(ring)`` restarts the drive table at the next block and lets the ring's
 first frame be the input sample ``D`` frames later, so at ring index ``n`` the
 drive's fundamental arrives as ``cos(2 pi f n / rate_hz + phase_deg)``: the
-lock-in's phase read-out (signal minus reference, :mod:`livefilt.detect`)
+lock-in's phase read-out (signal minus reference, :mod:`livefilt.dsp.detect`)
 then means the phase the sensor path adds.  When the delay is not measured,
 ``reference_hint`` holds ``frequency_hz`` only.  An output underflow or input
 overflow moves that alignment by an unknown number of frames; both are
@@ -113,7 +113,7 @@ from typing import Any
 import numpy as np
 
 from livefilt.errors import SettingError, SourceError, SourceUnavailable
-from livefilt.source import DeviceInfo, Source
+from livefilt.acquire.source import DeviceInfo, Source
 
 __all__ = ["SoundCardSource", "DriveSpec"]
 

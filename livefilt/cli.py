@@ -12,8 +12,8 @@ import logging
 import os
 import sys
 
-from . import __version__
-from .errors import LivefiltError
+from livefilt import __version__
+from livefilt.errors import LivefiltError
 
 __all__ = ["main"]
 
@@ -25,7 +25,7 @@ CAUTION = ("Safety: an infrared LED or laser can harm eyes without a visible war
 
 
 def _settings(args):
-    from .config import demo_config, load_config, parse_config
+    from livefilt.config import demo_config, load_config, parse_config
     s = load_config(args.config) if getattr(args, "config", None) else demo_config()
     if getattr(args, "input", None):
         doc = s.to_mapping()
@@ -41,13 +41,13 @@ def _settings(args):
 
 
 def _pace_drivers(driver: str) -> set:
-    from .source import load_driver
+    from livefilt.acquire.source import load_driver
     return set(load_driver(driver).options)
 
 
 def cmd_run(args) -> int:
-    from .engine import Engine
-    from .readout import Readout
+    from livefilt.stream.engine import Engine
+    from livefilt.readout import Readout
 
     settings = _settings(args)
     engine = Engine(settings)
@@ -89,7 +89,7 @@ def cmd_live(args) -> int:
     if args.screenshot and not _has_display():
         os.environ["QT_QPA_PLATFORM"] = "offscreen"
     try:
-        from .window import run_window
+        from livefilt.window import run_window
     except ImportError as e:
         print(f"livefilt: the window needs pyqtgraph and PySide6 ({e.name or e} missing: "
               "pip install 'livefilt[window]'): showing the terminal read-out instead", file=sys.stderr)
@@ -100,7 +100,7 @@ def cmd_live(args) -> int:
 
 
 def cmd_sources(args) -> int:
-    from .source import driver_names, load_driver
+    from livefilt.acquire.source import driver_names, load_driver
     for name in driver_names():
         try:
             cls = load_driver(name)
@@ -122,13 +122,13 @@ def cmd_sources(args) -> int:
 
 
 def cmd_speed(args) -> int:
-    from .speed import run_speed
+    from livefilt.speed import run_speed
     args.window_bench = None
     if args.window:
         if not _has_display():
             os.environ["QT_QPA_PLATFORM"] = "offscreen"
         try:
-            from .window.bench import measure_window
+            from livefilt.window.bench import measure_window
         except ImportError as e:
             print(f"livefilt: --window needs pyqtgraph and PySide6 ({e.name or e} missing: "
                   "pip install 'livefilt[window]')", file=sys.stderr)

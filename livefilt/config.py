@@ -1,8 +1,8 @@
 """Settings: TOML (stdlib ``tomllib``) into typed, validated settings.
 
 One validation path: every value is checked where its meaning lives
-(:class:`~livefilt.design.StageSpec`, :class:`~livefilt.detect.DetectorSpec`,
-:class:`~livefilt.detect.ReferenceSpec`, the driver's ``from_settings``) and
+(:class:`~livefilt.dsp.design.StageSpec`, :class:`~livefilt.dsp.detect.DetectorSpec`,
+:class:`~livefilt.dsp.detect.ReferenceSpec`, the driver's ``from_settings``) and
 errors are re-raised here with the full field path, e.g.
 ``chains[0].stages[2].cutoff_hz = 30000: must be between 0 and Nyquist
 (24000 Hz), exclusive``.
@@ -23,10 +23,10 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Mapping
 
-from .design import StageSpec
-from .detect import DetectorSpec, ReferenceSpec
-from .errors import SettingError
-from .tomlout import dumps
+from livefilt.dsp.design import StageSpec
+from livefilt.dsp.detect import DetectorSpec, ReferenceSpec
+from livefilt.errors import SettingError
+from livefilt.tomlout import dumps
 
 __all__ = ["Settings", "SourceSettings", "ChainSettings", "OutputSettings",
            "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS"]
@@ -142,7 +142,7 @@ def _positive_number(v: Any, path: str, what: str) -> float:
 
 def parse_source(table: Mapping) -> SourceSettings:
     """Validate the common keys of ``[source]``; the driver checks the rest."""
-    from .source import driver_names
+    from livefilt.acquire.source import driver_names
 
     driver = table.get("driver", "simulated")
     if driver not in driver_names():

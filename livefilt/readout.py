@@ -11,24 +11,9 @@ from __future__ import annotations
 import math
 import sys
 
+from livefilt.units import si
+
 __all__ = ["Readout", "si"]
-
-_PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
-
-
-def si(x: float, unit: str, digits: int = 4) -> str:
-    """``0.001234, "V"`` -> ``"1.234 mV"``; NaN -> ``"—"``."""
-    if x is None or not math.isfinite(x):
-        return "—"
-    if x == 0:
-        return f"0 {unit}"
-    a = abs(x)
-    scale, p = _PREFIX[0]
-    for s, pre in _PREFIX:
-        if a >= s * 0.9995:
-            scale, p = s, pre
-    return f"{x / scale:.{digits}g} {p}{unit}"
-
 
 def _db(x: float) -> str:
     if x is None or math.isnan(x):

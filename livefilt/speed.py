@@ -15,7 +15,7 @@ Measures (each row: measure, value, unit, target, pass)
   so the first fills the cache: this is the warm-cache start-up and it
   includes any JIT compile; the timings below exclude it (warm-up runs).
 - ``filter ratio``: at every block size in :data:`BLOCKS`, the throughput
-  of the engine's filter stage (:class:`~livefilt.sections.FilterBank`:
+  of the engine's filter stage (:class:`~livefilt.dsp.sections.FilterBank`:
   every chain on 2-channel float32 frames, one call per block, as the
   engine runs it) divided by that of scipy's whole-array ``sosfilt`` on
   the same samples, chain after chain, timed alternately in the same run
@@ -62,11 +62,11 @@ import tracemalloc
 import numpy as np
 from scipy import signal
 
-from .config import demo_config, load_config, parse_config
-from .design import chain_sos
-from .detect import make_detector
-from .engine import Engine, build_source
-from .sections import FilterBank, SosFilter
+from livefilt.config import demo_config, load_config, parse_config
+from livefilt.dsp.design import chain_sos
+from livefilt.dsp.detect import make_detector
+from livefilt.stream.engine import Engine, build_source
+from livefilt.dsp.sections import FilterBank, SosFilter
 
 __all__ = ["run_speed", "measure", "BLOCKS"]
 
@@ -149,7 +149,7 @@ def _startup(bench) -> dict:
     not start-up and is not counted.
     """
     code = ("import sys, json, time; from livefilt.config import parse_config; "
-            "from livefilt.engine import Engine; "
+            "from livefilt.stream.engine import Engine; "
             "e = Engine(parse_config(json.loads(sys.argv[1]))); e.run(e.block / e.rate_hz); "
             "print(repr(time.time()))")
     cmd = [sys.executable, "-c", code, json.dumps(bench.to_mapping())]

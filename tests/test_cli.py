@@ -7,7 +7,7 @@ import sys
 import numpy as np
 import scipy.io.wavfile as sw
 
-from livefilt.record import read_run
+from livefilt.runs.record import read_run
 
 
 def livefilt(*args, timeout=120):
@@ -70,8 +70,8 @@ def test_sources_lists_every_driver_without_a_traceback():
 
 
 def test_importing_livefilt_needs_neither_qt_nor_portaudio():
-    code = ("import sys, livefilt, livefilt.engine, livefilt.cli, livefilt.source;"
-            "from livefilt.source import load_driver; [load_driver(n) for n in ('simulated','file','soundcard','serial')];"
+    code = ("import sys, livefilt, livefilt.stream.engine, livefilt.cli, livefilt.acquire.source;"
+            "from livefilt.acquire.source import load_driver; [load_driver(n) for n in ('simulated','file','soundcard','serial')];"
             "bad=[m for m in ('PySide6','sounddevice','serial','pyqtgraph') if m in sys.modules];"
             "print(bad); sys.exit(1 if bad else 0)")
     r = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)

@@ -10,6 +10,6 @@ reducer), :mod:`.strength` (detected strength plots and the big read-out),
 :func:`run_window`), :mod:`.bench` (frame rate, drawing load and latency).
 """
 
-from .main import MainWindow, run_window
+from livefilt.window.main import MainWindow, run_window
 
 __all__ = ["MainWindow", "run_window"]

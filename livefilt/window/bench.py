@@ -45,9 +45,9 @@ def measure_window(seconds: float = 10, rate_hz: float = 192000, *, block: int =
         os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     from PySide6 import QtCore, QtWidgets
 
-    from ..config import demo_config, parse_config
-    from ..engine import Engine
-    from .main import MainWindow
+    from livefilt.config import demo_config, parse_config
+    from livefilt.stream.engine import Engine
+    from livefilt.window.main import MainWindow
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(["livefilt-bench"])
     doc = demo_config().to_mapping()

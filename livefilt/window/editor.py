@@ -24,9 +24,9 @@ from pathlib import Path
 
 from PySide6 import QtCore, QtWidgets
 
-from ..design import DESIGNS, STAGE_TYPES, describe
-from ..errors import SettingError
-from . import palette
+from livefilt.dsp.design import DESIGNS, STAGE_TYPES, describe
+from livefilt.errors import SettingError
+from livefilt.window import palette
 
 __all__ = ["ReferenceEditor", "ChainEditor", "SettingsPanel", "parse_text"]
 

@@ -20,14 +20,14 @@ import time
 import numpy as np
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from ..errors import LivefiltError
-from . import palette
-from .editor import SettingsPanel
-from .notes import NotesBar, RecordBar
-from .spectrum import SpectrumPanel
-from .status import StatusLine
-from .strength import BigReadout, RowHistory, StrengthPlots
-from .strip import StripChart
+from livefilt.errors import LivefiltError
+from livefilt.window import palette
+from livefilt.window.editor import SettingsPanel
+from livefilt.window.notes import NotesBar, RecordBar
+from livefilt.window.spectrum import SpectrumPanel
+from livefilt.window.status import StatusLine
+from livefilt.window.strength import BigReadout, RowHistory, StrengthPlots
+from livefilt.window.strip import StripChart
 
 __all__ = ["MainWindow", "run_window", "CAUTION_TEXT"]
 
@@ -230,7 +230,7 @@ def run_window(settings, duration_s: float | None = None, screenshot=None, out=N
     LivefiltError
         A setting or source problem (the CLI prints it in one line).
     """
-    from ..engine import Engine
+    from livefilt.stream.engine import Engine
 
     app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(["livefilt"])
     engine = Engine(settings, tap_seconds=60)

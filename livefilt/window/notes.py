@@ -18,8 +18,8 @@ import time
 
 from PySide6 import QtCore, QtWidgets
 
-from ..errors import LivefiltError
-from . import palette
+from livefilt.errors import LivefiltError
+from livefilt.window import palette
 
 __all__ = ["NotesBar", "RecordBar"]
 

@@ -20,8 +20,8 @@ from numpy.lib.stride_tricks import sliding_window_view
 from PySide6 import QtCore, QtWidgets
 from scipy import fft, signal
 
-from . import palette
-from .strip import fit_range
+from livefilt.window import palette
+from livefilt.window.strip import fit_range
 
 __all__ = ["SpectrumPanel", "welch_db", "column_minmax"]
 

@@ -18,9 +18,9 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from ..readout import si
-from . import palette
-from .strip import fit_range
+from livefilt.units import si
+from livefilt.window import palette
+from livefilt.window.strip import fit_range
 
 __all__ = ["StrengthPlots", "BigReadout", "RowHistory"]
 
@@ -32,7 +32,7 @@ class RowHistory:
 
     Parameters
     ----------
-    tap : livefilt.taps.Tap
+    tap : livefilt.stream.taps.Tap
     chain : str
     keep_s : float
         History kept, seconds.

@@ -20,7 +20,7 @@ import math
 import numpy as np
 import pyqtgraph as pg
 
-from . import palette
+from livefilt.window import palette
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
 
@@ -165,7 +165,7 @@ class StripChart(pg.GraphicsLayoutWidget):
 
     Parameters
     ----------
-    tap : livefilt.taps.Tap
+    tap : livefilt.stream.taps.Tap
     inputs : list of int
         Tap stream indices of the raw channels to show (the chains' inputs).
     chains : list of (stream index, name)

@@ -20,7 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import RecordingError
+from livefilt.errors import RecordingError
 
 __all__ = ["WavWriter", "WavReader", "read_wav"]
 

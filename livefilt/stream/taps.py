@@ -22,7 +22,7 @@ from collections import deque
 
 import numpy as np
 
-from .detect import READING_DTYPE
+from livefilt.dsp.detect import READING_DTYPE
 
 __all__ = ["Tap", "RowRing"]
 

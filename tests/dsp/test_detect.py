@@ -1,4 +1,4 @@
-"""Tests of livefilt.detect against closed forms and the trade's known figures.
+"""Tests of livefilt.dsp.detect against closed forms and the trade's known figures.
 
 Each check names its source: REFERENCES.md rows (3a ENBW, 3c settling, 11
 chopped light), closed forms, scipy.signal as the reference library.
@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy.signal import freqz
 
-from livefilt.detect import (READING_DTYPE, DetectorSpec, LockIn, ReferenceSpec, RmsDetector,
+from livefilt.dsp.detect import (READING_DTYPE, DetectorSpec, LockIn, ReferenceSpec, RmsDetector,
                              make_detector)
 from livefilt.errors import SettingError
 
@@ -199,7 +199,7 @@ def test_measured_square_reference_tracks_and_relocks(caplog):
     ref[off0:off1] = 0.0  # reference removed for 0.5 s
     sig = tone(n, f, amp, sig_deg)
     det = lockin(tau=0.05, out=480, frequency_hz=1370.0, channel=1)
-    with caplog.at_level(logging.WARNING, logger="livefilt.detect"):
+    with caplog.at_level(logging.WARNING, logger="livefilt.dsp.detect"):
         rows = run(det, sig, block=256, ref=ref)
     settled = rows[(rows["index"] >= 1.0 * FS) & (rows["index"] < off0)]
     assert settled["locked"].all()

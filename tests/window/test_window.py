@@ -22,12 +22,12 @@ need_module("PySide6", "pip install 'livefilt[window]'")
 from PySide6 import QtCore  # noqa: E402
 
 from livefilt.config import demo_config, load_config, parse_config  # noqa: E402
-from livefilt.engine import Engine  # noqa: E402
+from livefilt.stream.engine import Engine  # noqa: E402
 from livefilt.errors import SettingError  # noqa: E402
-from livefilt.record import read_run  # noqa: E402
+from livefilt.runs.record import read_run  # noqa: E402
 from livefilt.window import MainWindow, run_window  # noqa: E402
-from livefilt.detect import READING_DTYPE  # noqa: E402
-from livefilt.taps import Tap  # noqa: E402
+from livefilt.dsp.detect import READING_DTYPE  # noqa: E402
+from livefilt.stream.taps import Tap  # noqa: E402
 from livefilt.window.spectrum import welch_db  # noqa: E402
 from livefilt.window.strip import MinMaxReducer  # noqa: E402
 
@@ -247,7 +247,7 @@ def test_reference_edit_moves_every_lockin_and_saves(win, qtbot, tmp_path, artif
 
 
 def test_reference_announced_by_the_source_is_shown_and_overridable(qapp, qtbot, artifacts):
-    from livefilt.engine import build_source
+    from livefilt.stream.engine import build_source
     from livefilt.window.editor import SettingsPanel
 
     # a driving sound card or the serial firmware announce their modulation; here the

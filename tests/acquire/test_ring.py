@@ -4,7 +4,7 @@ import threading
 
 import numpy as np
 
-from livefilt.ring import GAP_DEVICE, GAP_OVERRUN, Ring
+from livefilt.acquire.ring import GAP_DEVICE, GAP_OVERRUN, Ring
 
 
 def test_fifo_and_index_wraparound():

@@ -1,9 +1,9 @@
 """The engine: source -> ring -> every chain on the same samples -> outputs.
 
 One engine serves the live window, the headless read-out and replay.  It
-owns the driver (through the :mod:`livefilt.source` contract), the
-:class:`~livefilt.ring.Ring`, the chains, a display :class:`~livefilt.taps.Tap`
-and, while recording, a :class:`~livefilt.record.RunWriter`.
+owns the driver (through the :mod:`livefilt.acquire.source` contract), the
+:class:`~livefilt.acquire.ring.Ring`, the chains, a display :class:`~livefilt.stream.taps.Tap`
+and, while recording, a :class:`~livefilt.runs.record.RunWriter`.
 
 Threads: the driver produces into the ring; the engine thread
 (:meth:`Engine.start`, or :meth:`Engine.run` in the caller's thread) reads
@@ -27,15 +27,15 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 
-from .chain import Chain
-from .config import ChainSettings, Settings, parse_chain
-from .detect import ReferenceSpec
-from .errors import SettingError
-from .record import RunWriter, make_marker, new_run_folder
-from .ring import Ring
-from .sections import FilterBank
-from .source import Source, load_driver
-from .taps import Tap
+from livefilt.stream.chain import Chain
+from livefilt.config import ChainSettings, Settings, parse_chain
+from livefilt.dsp.detect import ReferenceSpec
+from livefilt.errors import SettingError
+from livefilt.runs.record import RunWriter, make_marker, new_run_folder
+from livefilt.acquire.ring import Ring
+from livefilt.dsp.sections import FilterBank
+from livefilt.acquire.source import Source, load_driver
+from livefilt.stream.taps import Tap
 
 __all__ = ["Engine", "EngineStats", "build_source"]
 

@@ -9,9 +9,9 @@ from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 from scipy import signal
 
-from livefilt.design import StageSpec, chain_sos
+from livefilt.dsp.design import StageSpec, chain_sos
 from livefilt.errors import SettingError
-from livefilt.sections import SosFilter
+from livefilt.dsp.sections import SosFilter
 
 FS = 48000.0
 

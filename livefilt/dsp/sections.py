@@ -10,15 +10,15 @@ changes the number of sections.  One thread at a time: the engine calls
 :meth:`process` and, between blocks, :meth:`retune`.
 
 :meth:`SosFilter.process` runs one compiled call per block
-(:func:`livefilt.kernels.sos_block`, the same loop and order of terms as
+(:func:`livefilt.dsp.kernels.sos_block`, the same loop and order of terms as
 scipy's ``sosfilt``, so the samples agree to the last bit or so); when the
-compiled kernels are unavailable (:func:`livefilt.kernels.compiled` returns
+compiled kernels are unavailable (:func:`livefilt.dsp.kernels.compiled` returns
 None, e.g. with ``LIVEFILT_NO_JIT=1``) it calls :func:`scipy.signal.sosfilt`.
 The choice is made when the filter is built.
 
 :class:`FilterBank` runs several filters (the engine's chains, each on its
 own input column) on one block of frames in a single compiled call
-(:func:`livefilt.kernels.sos_bank`): the filters' ``.sos`` and ``.zi``
+(:func:`livefilt.dsp.kernels.sos_bank`): the filters' ``.sos`` and ``.zi``
 become views into the bank's packed arrays, so their state stays theirs.
 """
 
@@ -30,7 +30,7 @@ import logging
 import numpy as np
 from scipy import signal
 
-from . import kernels
+from livefilt.dsp import kernels
 
 __all__ = ["SosFilter", "FilterBank"]
 

@@ -7,7 +7,7 @@ import pytest
 import scipy.io.wavfile as sw
 
 from livefilt.errors import RecordingError
-from livefilt.wavio import WavReader, WavWriter, read_wav
+from livefilt.runs.wavio import WavReader, WavWriter, read_wav
 
 
 def test_float32_written_is_read_by_scipy_bit_exact(tmp_path):

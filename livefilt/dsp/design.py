@@ -43,7 +43,7 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 from scipy import optimize, signal
 
-from .errors import SettingError
+from livefilt.errors import SettingError
 
 __all__ = [
     "StageSpec",

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import integrate, signal
 
-from livefilt.design import (StageSpec, analog_cutoff_hz, chain_sos, describe,
+from livefilt.dsp.design import (StageSpec, analog_cutoff_hz, chain_sos, describe,
                              frequency_response, parse_si, rc_analog, stage_sos)
 from livefilt.errors import SettingError
 

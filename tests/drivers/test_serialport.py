@@ -11,8 +11,8 @@ import numpy as np
 import pytest
 
 from livefilt.errors import SettingError, SourceError
-from livefilt.ring import Ring
-from livefilt.source import load_driver
+from livefilt.acquire.ring import Ring
+from livefilt.acquire.source import load_driver
 
 from livefilt.drivers import wire
 from livefilt.drivers.serialport import DEFAULT_BAUD, SerialSource

@@ -18,12 +18,12 @@ import tty
 import numpy as np
 import pytest
 
-from livefilt.ring import Ring
+from livefilt.acquire.ring import Ring
 from livefilt.drivers.serialport import SerialSource
 
-from .system import require
+from tests.system import require
 
-FIRMWARE = pathlib.Path(__file__).resolve().parent.parent / "drivers" / "firmware"
+FIRMWARE = pathlib.Path(__file__).resolve().parents[2] / "drivers" / "firmware"
 BUILD = FIRMWARE / "build"
 FLASH_BUDGET, RAM_BUDGET = 2048, 512  # bytes; the ATmega328P has 32 KB and 2 KB
 SINE_HZ, SINE_V, OFFSET_V = 123.0, 1.0, 2.5

@@ -11,10 +11,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from .config import ChainSettings
-from .design import chain_sos, frequency_response
-from .detect import ReferenceSpec, make_detector
-from .sections import SosFilter
+from livefilt.config import ChainSettings
+from livefilt.dsp.design import chain_sos, frequency_response
+from livefilt.dsp.detect import ReferenceSpec, make_detector
+from livefilt.dsp.sections import SosFilter
 
 __all__ = ["Chain"]
 

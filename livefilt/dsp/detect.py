@@ -48,7 +48,7 @@ memory).
 Compiled path
 -------------
 By default both detectors run one compiled call per block
-(:mod:`livefilt.kernels`): mixer (or square) and the ``n`` output sections,
+(:mod:`livefilt.dsp.kernels`): mixer (or square) and the ``n`` output sections,
 sample by sample, storing only the rows due.  The sections are linear and
 recursive, so every sample still passes through them, but the per-sample
 cost is a few multiply-adds; rows are read at their own sample indices, so
@@ -81,8 +81,8 @@ import numpy as np
 from scipy.signal import lfilter
 from scipy.special import gamma, gammaincinv
 
-from . import kernels
-from .errors import SettingError
+from livefilt.dsp import kernels
+from livefilt.errors import SettingError
 
 __all__ = [
     "READING_DTYPE",

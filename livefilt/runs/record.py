@@ -7,7 +7,7 @@ A run folder holds
   distance markers.  Rewritten (atomically) at start, on every marker and at
   stop, so a crash loses no marker.
 - ``raw.wav``: float32, every input channel, exactly the samples acquired
-  (see :mod:`livefilt.wavio`; header refreshed about once a second).
+  (see :mod:`livefilt.runs.wavio`; header refreshed about once a second).
 - ``results.csv``: one row per chain per output interval with the columns
   :data:`RESULT_COLUMNS`; amplitudes in the input's units (volts where the
   driver is calibrated, else full scale), RMS.
@@ -31,10 +31,10 @@ from typing import Any
 
 import numpy as np
 
-from . import __version__
-from .errors import RecordingError
-from .tomlout import dumps
-from .wavio import WavWriter, read_wav
+from livefilt import __version__
+from livefilt.errors import RecordingError
+from livefilt.tomlout import dumps
+from livefilt.runs.wavio import WavWriter, read_wav
 
 __all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
 
@@ -72,7 +72,7 @@ class RunWriter:
     config_toml : str
         The config as used (TOML text, as :meth:`Settings.to_toml` makes it).
     source_info : dict
-        The source's :meth:`~livefilt.source.Source.info`.
+        The source's :meth:`~livefilt.acquire.source.Source.info`.
     rate_hz : float
     channels : int
     """

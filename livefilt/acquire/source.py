@@ -8,7 +8,7 @@ party's plug-in).  Drivers live in ``drivers/`` (installed as
 Real-time contract
 ------------------
 A driver's thread or audio callback only copies samples into the
-:class:`~livefilt.ring.Ring` it was given in :meth:`Source.start` (``ring.write``)
+:class:`~livefilt.acquire.ring.Ring` it was given in :meth:`Source.start` (``ring.write``)
 and reports losses with ``ring.mark_gap``; it does no filtering, no file I/O
 and no logging per block.  When its data ends for good (end of a file) it
 calls ``ring.close()``.
@@ -33,7 +33,7 @@ import time
 from importlib import metadata
 from typing import Any, ClassVar
 
-from .errors import SettingError, SourceUnavailable
+from livefilt.errors import SettingError, SourceUnavailable
 
 __all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
 

@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 
 from livefilt.config import demo_config, parse_config
-from livefilt.engine import Engine
-from livefilt.record import read_run
-from livefilt.source import Source
+from livefilt.stream.engine import Engine
+from livefilt.runs.record import read_run
+from livefilt.acquire.source import Source
 
 
 def fast_demo(block=256, **source):

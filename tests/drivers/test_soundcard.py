@@ -17,15 +17,15 @@ import tomllib
 import numpy as np
 import pytest
 
-from livefilt.detect import DetectorSpec, ReferenceSpec, make_detector
+from livefilt.dsp.detect import DetectorSpec, ReferenceSpec, make_detector
 from livefilt.drivers import soundcard
 from livefilt.drivers.soundcard import SoundCardSource
 from livefilt.errors import SettingError, SourceError
-from livefilt.ring import Block, Ring
-from livefilt.source import load_driver
+from livefilt.acquire.ring import Block, Ring
+from livefilt.acquire.source import load_driver
 from livefilt.tomlout import dumps
 
-from .system import require
+from tests.system import require
 
 FS = 48000
 BLOCK = 256
@@ -120,8 +120,8 @@ def clean_take(make, seconds=None, tries=3):
 
 # -- no sound server needed ------------------------------------------------------
 def test_import_needs_no_portaudio():
-    code = ("import sys, livefilt, livefilt.source, livefilt.drivers.soundcard;"
-            "from livefilt.source import load_driver; load_driver('soundcard');"
+    code = ("import sys, livefilt, livefilt.acquire.source, livefilt.drivers.soundcard;"
+            "from livefilt.acquire.source import load_driver; load_driver('soundcard');"
             "print('sounddevice' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"
@@ -250,7 +250,7 @@ def test_sine_drive_recovered_by_lockin(sound):
     assert np.array_equal(x, table[np.arange(x.size) % table.size])
 
     # the project's lock-in, referenced with the hint: RMS amplitude A / sqrt(2)
-    # (livefilt.detect's stated convention) within 1 %, phase 0 (loop adds none)
+    # (livefilt.dsp.detect's stated convention) within 1 %, phase 0 (loop adds none)
     spec = DetectorSpec("lockin", time_constant_s=0.01, slope_db_oct=24)
     lockin = make_detector(spec, ReferenceSpec(hint["frequency_hz"], hint["phase_deg"]), FS, 480)
     rows = lockin.process(x, 0)

@@ -12,12 +12,12 @@ import numpy as np
 import pytest
 from scipy import signal
 
-from livefilt import kernels
+from livefilt.dsp import kernels
 from tests.system import require
 from livefilt.config import demo_config, parse_config
-from livefilt.detect import DetectorSpec, ReferenceSpec, make_detector
-from livefilt.engine import Engine
-from livefilt.sections import FilterBank, SosFilter
+from livefilt.dsp.detect import DetectorSpec, ReferenceSpec, make_detector
+from livefilt.stream.engine import Engine
+from livefilt.dsp.sections import FilterBank, SosFilter
 
 FS = 48000.0
 require(kernels.compiled() is not None, "numba kernels unavailable (pip install numba)", module_level=True)
@@ -133,7 +133,7 @@ def test_compiled_lockin_rows_do_not_depend_on_block_split():
 def test_no_jit_env_selects_scipy_path_with_one_warning(monkeypatch, caplog):
     monkeypatch.setenv(kernels.NO_JIT_ENV, "1")
     monkeypatch.setitem(kernels._state, "warned", False)
-    with caplog.at_level(logging.WARNING, logger="livefilt.kernels"):
+    with caplog.at_level(logging.WARNING, logger="livefilt.dsp.kernels"):
         assert kernels.compiled() is None
         f = SosFilter(signal.butter(2, 0.1, output="sos"))
         assert kernels.compiled() is None

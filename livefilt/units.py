@@ -1,0 +1,24 @@
+"""Numbers with units for people: SI-prefixed formatting shared by the terminal
+read-out, the window and the reports, so a value reads the same everywhere."""
+
+from __future__ import annotations
+
+import math
+
+__all__ = ["si"]
+
+_PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
+
+
+def si(x: float, unit: str, digits: int = 4) -> str:
+    """``0.001234, "V"`` -> ``"1.234 mV"``; NaN -> ``"—"``."""
+    if x is None or not math.isfinite(x):
+        return "—"
+    if x == 0:
+        return f"0 {unit}"
+    a = abs(x)
+    scale, p = _PREFIX[0]
+    for s, pre in _PREFIX:
+        if a >= s * 0.9995:
+            scale, p = s, pre
+    return f"{x / scale:.{digits}g} {p}{unit}"
