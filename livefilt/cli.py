@@ -1,4 +1,4 @@
-"""Command line: ``livefilt live | run | sources | speed``.
+"""Command line: ``livefilt live | run | sources | speed | range | design | survey | check | tune``.
 
 Every user mistake ends in one line on stderr (``livefilt: <what>``) and exit
 status 2; Ctrl-C ends a run cleanly with its files closed.  Only this module
@@ -14,15 +14,11 @@ import sys
 
 from livefilt import __version__
 from livefilt.errors import LivefiltError
+from livefilt.safety import CAUTION
 
 __all__ = ["main"]
 
 log = logging.getLogger("livefilt")
-
-CAUTION = ("Safety: an infrared LED or laser can harm eyes without a visible warning; follow the "
-           "laser-safety class of your source and local rules. Mains-powered lamps and supplies "
-           "are dangerous: leave mains wiring to licensed practice and local codes.")
-
 
 def _settings(args):
     from livefilt.config import demo_config, load_config, parse_config
@@ -137,6 +133,14 @@ def cmd_speed(args) -> int:
     return run_speed(args)
 
 
+def _analysis(module: str):
+    """The ``main(args)`` of an analysis command, imported only when it runs (start-up)."""
+    def run(args) -> int:
+        import importlib
+        return importlib.import_module(f"livefilt.analysis.{module}").main(args)
+    return run
+
+
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="livefilt", description=(
         "Live acquisition and causal filtering for modulated-light sensors. "
@@ -168,6 +172,40 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--quick", action="store_true", help="shorter measurements (noisier)")
     sp.add_argument("--window", action="store_true", help="also measure the live window (frame rate, CPU, latency)")
     sp.set_defaults(func=cmd_speed)
+
+    # -- before and after the bench: each lives in livefilt/analysis/ ----------------
+    rg = sub.add_parser("range", help="recorded runs -> detection range with its interval")
+    rg.add_argument("runs", nargs="+", metavar="RUN", help="run folders")
+    rg.add_argument("--snr-db", type=float, default=10.0, metavar="DB", help="detection threshold (default 10 dB)")
+    rg.add_argument("--want-m", type=float, metavar="D", help="advise the time constant that reaches D metres")
+    rg.add_argument("--out", metavar="DIR", help="report folder (default: beside the first run)")
+    rg.set_defaults(func=_analysis("range_report"))
+    dg = sub.add_parser("design", help="the front end and chains on paper: parts, alias, interferers, ENBW, lag")
+    dg.add_argument("--config", metavar="FILE", help="TOML settings (default: the built-in demo scene)")
+    dg.add_argument("--out", metavar="DIR", help="report folder")
+    dg.set_defaults(func=_analysis("design_report"))
+    sv = sub.add_parser("survey", help="ambient recording -> quiet modulation frequencies")
+    sv.add_argument("recording", metavar="RECORDING", help="WAV file or run folder, light source off")
+    sv.add_argument("--config", metavar="FILE", help="settings with the front end and digitizer")
+    sv.add_argument("--out", metavar="DIR", help="report folder")
+    sv.set_defaults(func=_analysis("survey"))
+    ck = sub.add_parser("check", help="is this digitizer good enough, and is the stream whole?")
+    ck.add_argument("--config", metavar="FILE", help="TOML settings naming the source to check")
+    ck.add_argument("--input", metavar="RECORDING", help="check a recording instead of a live source")
+    ck.add_argument("--duration", type=_seconds, metavar="S", help="seconds of live data (default 10)")
+    ck.add_argument("--tone", type=float, metavar="HZ", help="the test tone's frequency")
+    ck.add_argument("--out", metavar="DIR", help="report folder")
+    ck.set_defaults(func=_analysis("check"))
+    tn = sub.add_parser("tune", help="recorded runs x a grid of settings -> the best range within a lag budget")
+    tn.add_argument("runs", nargs="+", metavar="RUN", help="run folders")
+    tn.add_argument("--grid", required=True, metavar="GRID.toml", help="the settings to vary")
+    tn.add_argument("--chain", metavar="NAME", help="the chain to vary (default: the first)")
+    tn.add_argument("--snr-db", type=float, default=10.0, metavar="DB", help="detection threshold (default 10 dB)")
+    tn.add_argument("--max-settling-s", type=float, metavar="S", help="the lag budget")
+    tn.add_argument("--workers", type=int, metavar="N", help="processes (default: the cores)")
+    tn.add_argument("--cluster", metavar="ADDRESS", help="a dask.distributed scheduler, tcp://HOST:PORT")
+    tn.add_argument("--out", metavar="DIR", help="report folder")
+    tn.set_defaults(func=_analysis("tune"))
     return p
 
 
