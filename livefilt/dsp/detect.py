@@ -65,7 +65,7 @@ State (for a faster path that must match)
 -----------------------------------------
 ``LockIn``: ``b`` (2,), ``a`` (2,) section coefficients; ``zi`` (n, 2, 1)
 lfilter state of the sections for the rows I, Q; ``stats`` a
-:class:`_WindowStats` over (I, Q) rows; ``tracker`` a :class:`_RefTracker`
+:class:`~livefilt.dsp.noise.WindowStats` over (I, Q) rows; ``tracker`` a :class:`_RefTracker`
 or None.  ``RmsDetector``: the same with ``zi`` (n, 1, 1) on ``x**2`` and
 ``stats`` over the amplitude rows.
 """
@@ -82,10 +82,13 @@ from scipy.signal import lfilter
 from scipy.special import gamma, gammaincinv
 
 from livefilt.dsp import kernels
+from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
 from livefilt.errors import SettingError
 
 __all__ = [
     "READING_DTYPE",
+    "BIAS_SNR_DB",
+    "LOCK_REASONS",
     "ReferenceSpec",
     "DetectorSpec",
     "LockIn",
@@ -108,7 +111,28 @@ READING_DTYPE = np.dtype([
     ("snr_db", np.float64),
     ("ref_hz", np.float64),
     ("locked", np.bool_),
+    # added with the honest read-outs (see livefilt.dsp.noise and the docstring)
+    ("noise_u", np.float64),           # relative standard uncertainty of noise (fraction)
+    ("snr_u_db", np.float64),          # standard uncertainty of snr_db, dB
+    ("vector_amplitude", np.float64),  # |window mean of (I, Q)|, RMS
+    ("amplitude_corrected", np.float64),  # sqrt(max(amplitude^2 - 2 noise^2, 0))
+    ("biased", np.bool_),              # SNR below BIAS_SNR_DB (or unknown): magnitude biased high
+    ("offset_hz", np.float64),         # signal frequency minus ref_hz, from the phase slope
+    ("offset_u_hz", np.float64),       # its standard uncertainty
+    ("lock_reason", np.int8),          # 0 locked, else a key of LOCK_REASONS
 ])
+
+#: SNR below which a magnitude reading is marked biased (Rice bias above ~ 1 %).
+BIAS_SNR_DB = 10.0
+
+#: Why ``locked`` is false, by ``lock_reason`` code.
+LOCK_REASONS = {
+    0: "",
+    1: "phase drifts faster than the output low-pass follows (reference off)",
+    2: "measured reference not locked",
+    3: "tracking: acquiring",
+    4: "tracking: lost",
+}
 
 _SLOPES = (6, 12, 18, 24)
 _WAVEFORMS = ("square", "sine")
@@ -225,7 +249,10 @@ class DetectorSpec:
     def from_mapping(cls, table: dict, fs: float) -> "DetectorSpec":
         """Validate a ``detector`` table; field paths are relative to it.
 
-        ``noise_window_s`` defaults to max(2 s, 20 time constants).
+        ``noise_window_s`` defaults to the window that gives the noise
+        estimate 32 effective degrees of freedom (12.5 % uncertainty; 36 time
+        constants for one section, 150 for four; at least 2 s), see
+        :func:`livefilt.dsp.noise.default_window_s`.
 
         Raises
         ------
@@ -245,7 +272,7 @@ class DetectorSpec:
         slope = table.get("slope_db_oct", 24)
         if isinstance(slope, bool) or not isinstance(slope, (int, float)) or slope not in _SLOPES:
             raise SettingError("slope_db_oct", slope, "must be 6, 12, 18 or 24 (dB/octave)")
-        window = _number(table, "noise_window_s", max(2.0, 20.0 * tau))
+        window = _number(table, "noise_window_s", default_window_s(int(slope) // 6, tau))
         if not window > 0:
             raise SettingError("noise_window_s", table["noise_window_s"], "must be above 0 s")
         return cls(kind, tau, int(slope), window)
@@ -309,6 +336,8 @@ class _Detector:
         self._rows_buf = np.empty((self._channels, 0))
         #: rows in the noise window
         self.window_rows = max(2, int(round(spec.noise_window_s * self.fs / output_every)))
+        self.tables = WindowTables(self.window_rows, output_every / self.fs, self.n_sections,
+                                   self.tau)
         self._work: dict = {}
         self.reset()
 
@@ -335,7 +364,7 @@ class _Detector:
     def reset(self) -> None:
         """Forget all state (filters start from zero, the noise window empties)."""
         self.zi = np.zeros((self.n_sections, self._channels, 1))
-        self.stats = _WindowStats(self.window_rows, self._stat_channels)
+        self.stats = WindowStats(self.window_rows, self._stat_channels)
         self._quiet_until: int | None = None
 
     def _settling(self, index: np.ndarray) -> int:
@@ -354,6 +383,33 @@ class _Detector:
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
+
+    def _unbiased_noise(self, var_ddof1: np.ndarray, count: np.ndarray) -> np.ndarray:
+        """Noise from a ddof-1 window variance of ``count`` rows: corrected
+        for the rows' correlation (:class:`~livefilt.dsp.noise.WindowTables`),
+        NaN below :data:`~livefilt.dsp.noise.MIN_DOF` degrees of freedom."""
+        ok = self.tables.dof[count] >= MIN_DOF
+        with np.errstate(invalid="ignore"):
+            v = np.maximum(var_ddof1 * self.tables.factor[count], 0.0)
+        return np.where(ok, np.sqrt(v), np.nan)
+
+    def _fill_common(self, rows: np.ndarray) -> None:
+        """SNR and its uncertainty, the bias-corrected magnitude, the flag.
+
+        ``snr_u_db = 20 / ln 10 * sqrt(noise_u^2 + (noise / amplitude)^2)``:
+        the noise estimate's own scatter and the amplitude's (first order).
+        ``amplitude_corrected = sqrt(max(amplitude^2 - 2 noise^2, 0))``: for a
+        Rice-distributed magnitude ``E[R^2] = A^2 + 2 sigma^2`` (Rice 1944), so
+        its square is unbiased.
+        """
+        amp, noise = rows["amplitude"], rows["noise"]
+        snr = _snr_db(amp, noise)
+        rows["snr_db"] = snr
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = noise / amp
+            rows["snr_u_db"] = 20.0 / math.log(10.0) * np.sqrt(rows["noise_u"] ** 2 + rel * rel)
+            rows["amplitude_corrected"] = np.sqrt(np.maximum(amp * amp - 2.0 * noise * noise, 0.0))
+            rows["biased"] = ~(snr >= BIAS_SNR_DB)
 
     def _lowpass(self, work: np.ndarray) -> np.ndarray:
         """Run the n sections over ``work`` (channels, n) in place of state ``zi``."""
@@ -400,7 +456,9 @@ class LockIn(_Detector):
     """
 
     _channels = 2
-    _stat_channels = 3  # I, Q and (I + Q)/sqrt 2 (for the I-Q covariance)
+    # I, Q, (I + Q)/sqrt 2 (for the I-Q covariance), row time t, unwrapped
+    # phase, (t + phase)/sqrt 2 (for the slope of the phase)
+    _stat_channels = 6
 
     def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
                  output_every: int, exact_path: bool = False):
@@ -416,6 +474,7 @@ class LockIn(_Detector):
 
     def reset(self) -> None:
         super().reset()
+        self._last_z, self._phi = 0j, 0.0
         self.tracker = (_RefTracker(self.reference, self.fs)
                         if self.reference.measured else None)
 
@@ -491,37 +550,89 @@ class LockIn(_Detector):
         return self._readout(start_index + rows_at.start, out[0, rows_at], out[1, rows_at],
                              ref_hz, locked)
 
-    def _readout(self, first_index: int, i_rows, q_rows, ref_hz, locked) -> np.ndarray:
-        """Rows from the low-passed I and Q at the due samples."""
-        rows = np.empty(i_rows.shape[0], READING_DTYPE)
-        rows["index"] = np.arange(first_index, first_index + i_rows.shape[0] * self.output_every,
-                                  self.output_every)
+    def _readout(self, first_index: int, i_rows, q_rows, ref_hz, locked, why=None) -> np.ndarray:
+        """Rows from the low-passed I and Q at the due samples.
+
+        ``locked``/``why``: the reference's own lock and reason codes per row
+        (None: an internal reference, locked unless its phase drifts).
+        """
+        m = i_rows.shape[0]
+        if m == 0:
+            return _NO_ROWS
+        rows = np.empty(m, READING_DTYPE)
+        index = np.arange(first_index, first_index + m * self.output_every, self.output_every)
+        rows["index"] = index
         rows["in_phase"] = i_rows
         rows["quadrature"] = q_rows
-        rows["amplitude"] = np.hypot(i_rows, q_rows)
+        amp = np.hypot(i_rows, q_rows)
+        rows["amplitude"] = amp
         rows["phase_deg"] = _wrap_deg(np.degrees(np.arctan2(q_rows, i_rows)))
-        # Noise across the signal's direction: the variance of (I, Q) along the
-        # unit vector perpendicular to the window's mean (I, Q).  Slow amplitude
-        # changes (a target being moved) lie along the mean and are not noise;
-        # isotropic noise has the same variance in every direction, so for
-        # white input this still tends to e * sqrt(ENBW).  The third stream
-        # (I + Q)/sqrt 2 gives the covariance: var = (vI + vQ)/2 + cov.
-        k = self._settling(rows["index"])
-        rows["noise"][:k] = np.nan
-        if k < len(rows):
+        # unwrapped phase, rad: the sum of the row-to-row phase increments
+        z = i_rows + 1j * q_rows
+        prev = np.empty_like(z)
+        prev[0] = self._last_z
+        prev[1:] = z[:-1]
+        phi = self._phi + np.cumsum(np.angle(z * np.conj(prev)))
+        self._last_z, self._phi = complex(z[-1]), float(phi[-1])
+        for name in ("noise", "noise_u", "vector_amplitude", "offset_hz", "offset_u_hz"):
+            rows[name] = np.nan
+        k = self._settling(index)
+        if k < m:
+            # Noise across the signal's direction: the variance of (I, Q) along
+            # the unit vector perpendicular to the window's mean (I, Q).  Slow
+            # amplitude changes (a target being moved) lie along the mean and
+            # are not noise; isotropic noise has the same variance in every
+            # direction.  (I + Q)/sqrt 2 gives the I-Q covariance, (t + phi)/sqrt 2
+            # the time-phase covariance: var = (v1 + v2)/2 + cov.
             i_s, q_s = i_rows[k:], q_rows[k:]
-            mean, var = self.stats.update(np.stack((i_s, q_s, (i_s + q_s) * _SQRT_HALF), axis=1))
+            t = (index[k:] // self.output_every).astype(np.float64)
+            p = phi[k:]
+            mean, var, cnt = self.stats.update(np.stack(
+                (i_s, q_s, (i_s + q_s) * _SQRT_HALF, t, p, (t + p) * _SQRT_HALF), axis=1))
             mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
             cov = var[:, 2] - 0.5 * (vi + vq)
             m2 = mi * mi + mq * mq
             with np.errstate(invalid="ignore", divide="ignore"):
                 across = np.where(m2 > 0, (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
                                   0.5 * (vi + vq))
-            rows["noise"][k:] = np.sqrt(np.maximum(across, 0.0))
-        rows["snr_db"] = _snr_db(rows["amplitude"], rows["noise"])
+                noise = self._unbiased_noise(across, cnt)
+                rows["noise"][k:] = noise
+                rows["noise_u"][k:] = np.where(np.isnan(noise), np.nan,
+                                               self.tables.relative_uncertainty(cnt))
+                vec = np.sqrt(m2)
+                rows["vector_amplitude"][k:] = vec
+                # frequency offset: least-squares slope of the unwrapped phase
+                # over the window's rows; its uncertainty from the regression
+                # variance 12 s^2 / (N T^2), s = noise / amplitude the phase
+                # noise, N the window's effective number of independent rows
+                vt, vp = var[:, 3], var[:, 4]
+                slope = (var[:, 5] - 0.5 * (vt + vp)) / vt  # rad per row
+                per_row = self.fs / self.output_every / (2.0 * math.pi)
+                rows["offset_hz"][k:] = slope * per_row
+                rows["offset_u_hz"][k:] = (noise / vec) * np.sqrt(
+                    12.0 / self.tables.n_mean[cnt]) / cnt * per_row
+        self._fill_common(rows)
         rows["ref_hz"] = ref_hz
-        rows["locked"] = True if locked is None else locked
+        lock = np.ones(m, dtype=bool) if locked is None else np.asarray(locked, dtype=bool).copy()
+        reason = np.zeros(m, dtype=np.int8)
+        if why is not None:
+            reason[:] = np.where(lock, 0, why)
+        drifting = np.abs(rows["offset_hz"]) - 2.0 * rows["offset_u_hz"] > self.follow_hz
+        drift_now = lock & drifting
+        reason[drift_now] = 1
+        lock[drift_now] = False
+        rows["locked"] = lock
+        rows["lock_reason"] = reason
         return rows
+
+    @property
+    def follow_hz(self) -> float:
+        """The frequency offset at which the output low-pass's gain falls to
+        0.99: ``(1 + (2 pi f tau)^2)^(-n/2) = 0.99``.  A reference further off
+        than that (significantly, by two standard uncertainties) reads
+        ``locked`` false: the amplitude reads low by more than 1 %."""
+        x = math.sqrt(0.99 ** (-2.0 / self.n_sections) - 1.0)
+        return x / (2.0 * math.pi * self.tau)
 
     def _anchor_phases(self, anchor: int, span: int) -> np.ndarray:
         """Exact ``(k f / fs) mod 1`` at the anchors ``anchor + i ANCHOR`` in a span."""
@@ -570,22 +681,34 @@ class RmsDetector(_Detector):
     def _readout(self, first_index: int, power) -> np.ndarray:
         """Rows from the low-passed square at the due samples."""
         amp = np.sqrt(np.maximum(power, 0.0))
-        rows = np.empty(amp.shape[0], READING_DTYPE)
-        rows["index"] = np.arange(first_index, first_index + amp.shape[0] * self.output_every,
+        m = amp.shape[0]
+        rows = np.empty(m, READING_DTYPE)
+        rows["index"] = np.arange(first_index, first_index + m * self.output_every,
                                   self.output_every)
         rows["in_phase"] = amp
         rows["quadrature"] = 0.0
         rows["amplitude"] = amp
         rows["phase_deg"] = np.nan
+        for name in ("noise", "noise_u", "vector_amplitude"):
+            rows[name] = np.nan
         k = self._settling(rows["index"])
-        rows["noise"][:k] = np.nan
-        rows["snr_db"][:k] = np.nan
-        if k < len(rows):
-            mean, var = self.stats.update(amp[k:, None])
-            rows["noise"][k:] = np.sqrt(var[:, 0])
-            rows["snr_db"][k:] = _snr_db(mean[:, 0], rows["noise"][k:])
+        if k < m:
+            mean, var, cnt = self.stats.update(amp[k:, None])
+            noise = self._unbiased_noise(var[:, 0], cnt)
+            rows["noise"][k:] = noise
+            rows["noise_u"][k:] = np.where(np.isnan(noise), np.nan,
+                                           self.tables.relative_uncertainty(cnt))
+            rows["vector_amplitude"][k:] = mean[:, 0]  # the window's mean amplitude
+        self._fill_common(rows)
+        if k < m:  # the RMS detector compares the window's mean amplitude with the noise
+            rows["snr_db"][k:] = _snr_db(rows["vector_amplitude"][k:], rows["noise"][k:])
+        rows["amplitude_corrected"] = amp  # band power: no Rice bias to remove
+        rows["biased"] = False
         rows["ref_hz"] = np.nan
+        rows["offset_hz"] = np.nan
+        rows["offset_u_hz"] = np.nan
         rows["locked"] = True
+        rows["lock_reason"] = 0
         return rows
 
 
@@ -800,69 +923,6 @@ class _RefTracker:
                 why = (f"frequency {freq:.3f} Hz outside the lock range"
                        if not in_range else "irregular crossings")
                 self._set_locked(False, why)
-
-
-class _WindowStats:
-    """Running mean and sample variance over the last ``W`` rows, O(1) a row.
-
-    Sums of ``v - K`` and ``(v - K)**2`` are carried, ``K`` a shift; every
-    time the row count reaches a multiple of ``W`` the sums are recomputed
-    exactly from the window (so rounding does not build up over hours, and
-    ``K`` follows the level, which keeps cancellation small).  Recomputation
-    happens at fixed row numbers, so the result does not depend on how rows
-    arrive in blocks.
-
-    State: ``ring`` (W, ch) the last W rows (row r in slot r % W), ``count``
-    rows seen, ``shift`` (ch,), ``s1`` (ch,), ``s2`` (ch,).
-    """
-
-    def __init__(self, window: int, channels: int):
-        self.window = window
-        self.ring = np.zeros((window, channels))
-        self.count = 0
-        self.shift = np.zeros(channels)
-        self.s1 = np.zeros(channels)
-        self.s2 = np.zeros(channels)
-
-    def update(self, v: np.ndarray):
-        """Add rows ``v`` (m, ch); return (mean, var) after each row, (m, ch)."""
-        m = v.shape[0]
-        mean = np.empty_like(v)
-        var = np.empty_like(v)
-        W = self.window
-        j = 0
-        while j < m:
-            if self.count == 0:
-                self.shift = v[0].copy()
-            r0 = self.count
-            # rows up to and including the next one with r % W == W - 1
-            take = min(m - j, W - r0 % W)
-            seg = v[j:j + take]
-            rows = np.arange(r0, r0 + take)
-            leave = self.ring[rows % W]  # slots about to be overwritten
-            gone = (rows >= W)[:, None]
-            shift = self.shift
-            new = seg - shift
-            old = np.where(gone, leave - shift, 0.0)
-            s1 = np.cumsum(np.vstack((self.s1, new - old)), axis=0)[1:]
-            s2 = np.cumsum(np.vstack((self.s2, new * new - old * old)), axis=0)[1:]
-            self.ring[rows % W] = seg
-            self.count += take
-            if self.count % W == 0:
-                self.shift = self.ring.mean(axis=0)
-                dev = self.ring - self.shift
-                s1[-1] = dev.sum(axis=0)
-                s2[-1] = (dev * dev).sum(axis=0)
-            count = np.minimum(rows + 1, W)[:, None].astype(np.float64)
-            mean[j:j + take] = shift + s1 / count
-            if self.count % W == 0:
-                mean[j + take - 1] = self.shift + s1[-1] / W
-            self.s1, self.s2 = s1[-1].copy(), s2[-1].copy()
-            with np.errstate(invalid="ignore", divide="ignore"):
-                v_ = (s2 - s1 * s1 / count) / (count - 1)
-            var[j:j + take] = np.where(count >= 2, np.maximum(v_, 0.0), np.nan)
-            j += take
-        return mean, var
 
 
 _MISSING = object()
