@@ -82,6 +82,7 @@ from scipy.signal import lfilter
 from scipy.special import gamma, gammaincinv
 
 from livefilt.dsp import kernels
+from livefilt.dsp.track import Tracker
 from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
 from livefilt.errors import SettingError
 
@@ -158,7 +159,13 @@ class ReferenceSpec:
     waveform : {"square", "sine"}
         Shape of the measured reference.
     lock_range : float
-        Relative lock range around ``frequency_hz`` (0 < r < 1).
+        Relative lock range around ``frequency_hz`` (0 < r < 1); the capture
+        range of a tracking reference.
+    track : bool
+        Follow the signal itself (:mod:`livefilt.dsp.track`): a phase-locked
+        loop on the chain's filtered input, ``frequency_hz`` the starting guess.
+    track_bandwidth_hz : float
+        The tracking loop's noise bandwidth, Hz.
     """
 
     frequency_hz: float | None = None
@@ -166,6 +173,8 @@ class ReferenceSpec:
     channel: int | None = None
     waveform: str = "square"
     lock_range: float = 0.2
+    track: bool = False
+    track_bandwidth_hz: float = 5.0
 
     @property
     def measured(self) -> bool:
@@ -180,7 +189,8 @@ class ReferenceSpec:
         SettingError
             For an unknown key or a value out of range.
         """
-        _check_keys(table, ("frequency_hz", "phase_deg", "channel", "waveform", "lock_range"))
+        _check_keys(table, ("frequency_hz", "phase_deg", "channel", "waveform", "lock_range",
+                            "track", "track_bandwidth_hz"))
         freq = table.get("frequency_hz")
         if freq is not None:
             freq = _number(table, "frequency_hz")
@@ -205,7 +215,21 @@ class ReferenceSpec:
         if not 0 < lock_range < 1:
             raise SettingError("lock_range", table["lock_range"],
                                "must be above 0 and below 1 (relative to frequency_hz)")
-        return cls(freq, phase, channel, waveform, lock_range)
+        track = table.get("track", False)
+        if not isinstance(track, bool):
+            raise SettingError("track", track, "must be true or false")
+        if track and freq is None:
+            raise SettingError("frequency_hz", None,
+                               "tracking (track = true) needs frequency_hz as the starting guess")
+        if track and channel is not None:
+            raise SettingError("track", track,
+                               "must be false with a measured reference (channel); choose one")
+        bw = _number(table, "track_bandwidth_hz", 5.0)
+        if track and not 0 < bw <= 0.02 * freq:
+            raise SettingError("track_bandwidth_hz", table.get("track_bandwidth_hz"),
+                               "must be above 0 and at most 2 % of frequency_hz, "
+                               f"{0.02 * freq:g} Hz")
+        return cls(freq, phase, channel, waveform, lock_range, track, bw)
 
     def to_mapping(self) -> dict:
         """The table that :meth:`from_mapping` turns back into this spec."""
@@ -217,6 +241,9 @@ class ReferenceSpec:
             out["channel"] = self.channel
         out["waveform"] = self.waveform
         out["lock_range"] = self.lock_range
+        if self.track:
+            out["track"] = True
+            out["track_bandwidth_hz"] = self.track_bandwidth_hz
         return out
 
 
@@ -394,7 +421,8 @@ class _Detector:
         return np.where(ok, np.sqrt(v), np.nan)
 
     def _fill_common(self, rows: np.ndarray) -> None:
-        """SNR and its uncertainty, the bias-corrected magnitude, the flag.
+        """SNR and its uncertainty, the bias-corrected magnitude, the flag
+        (``vector_amplitude`` and ``noise`` already filled).
 
         ``snr_u_db = 20 / ln 10 * sqrt(noise_u^2 + (noise / amplitude)^2)``:
         the noise estimate's own scatter and the amplitude's (first order).
@@ -409,7 +437,9 @@ class _Detector:
             rel = noise / amp
             rows["snr_u_db"] = 20.0 / math.log(10.0) * np.sqrt(rows["noise_u"] ** 2 + rel * rel)
             rows["amplitude_corrected"] = np.sqrt(np.maximum(amp * amp - 2.0 * noise * noise, 0.0))
-            rows["biased"] = ~(snr >= BIAS_SNR_DB)
+            # flagged on the window's SNR (vector average against the noise),
+            # steadier than a row's own; NaN (unknown) counts as biased
+            rows["biased"] = ~(_snr_db(rows["vector_amplitude"], noise) >= BIAS_SNR_DB)
 
     def _lowpass(self, work: np.ndarray) -> np.ndarray:
         """Run the n sections over ``work`` (channels, n) in place of state ``zi``."""
@@ -475,12 +505,21 @@ class LockIn(_Detector):
     def reset(self) -> None:
         super().reset()
         self._last_z, self._phi = 0j, 0.0
-        self.tracker = (_RefTracker(self.reference, self.fs)
-                        if self.reference.measured else None)
+        r = self.reference
+        if r.measured:
+            self.tracker = _RefTracker(r, self.fs)
+        elif r.track:
+            self.tracker = Tracker(r.frequency_hz, r.lock_range, r.track_bandwidth_hz, self.fs,
+                                   self.exact_path)
+        else:
+            self.tracker = None
 
     def note_gap(self, frames: int) -> None:
-        """Samples were lost: the measured-reference tracker re-acquires."""
-        if self.tracker is not None:
+        """Samples were lost: the measured-reference tracker re-acquires, a
+        tracking loop's oscillator advances over the gap."""
+        if isinstance(self.tracker, Tracker):
+            self.tracker.note_gap(frames)
+        elif self.tracker is not None:
             self.tracker.note_gap()
 
     def process(self, x: np.ndarray, start_index: int, ref: np.ndarray | None = None) -> np.ndarray:
@@ -502,15 +541,19 @@ class LockIn(_Detector):
         x = np.ascontiguousarray(x, dtype=np.float64)
         n = x.shape[0]
         start_index = int(start_index)
-        if self.tracker is not None:
+        why = None
+        if isinstance(self.tracker, Tracker):
+            cycles, ref_hz, locked, why = self.tracker.process(x, start_index)
+        elif self.tracker is not None:
             if ref is None:
                 raise ValueError("a measured reference needs the reference block (ref)")
             cycles, ref_hz, locked = self.tracker.process(np.asarray(ref, np.float64), start_index)
+            why = 2
         else:
             cycles = None
             ref_hz, locked = self.reference.frequency_hz, None
         if self._kern is None:
-            return self._process_exact(x, start_index, cycles, ref_hz, locked)
+            return self._process_exact(x, start_index, cycles, ref_hz, locked, why)
         first = (-start_index) % self.output_every
         rows = self._row_buffer(n)
         b0, b1, a1 = self._coef
@@ -527,9 +570,11 @@ class LockIn(_Detector):
         if locked is not None:
             at = slice(first, n, self.output_every)
             ref_hz, locked = ref_hz[at], locked[at]
-        return self._readout(start_index + first, rows[0, :m], rows[1, :m], ref_hz, locked)
+            if isinstance(why, np.ndarray):
+                why = why[at]
+        return self._readout(start_index + first, rows[0, :m], rows[1, :m], ref_hz, locked, why)
 
-    def _process_exact(self, x, start_index, cycles, ref_hz, locked) -> np.ndarray:
+    def _process_exact(self, x, start_index, cycles, ref_hz, locked, why=None) -> np.ndarray:
         """The straightforward full-rate path: numpy mixer, scipy lfilter sections."""
         n = x.shape[0]
         if cycles is None:
@@ -547,8 +592,10 @@ class LockIn(_Detector):
         rows_at = self._row_slice(start_index, n)
         if locked is not None:
             ref_hz, locked = ref_hz[rows_at], locked[rows_at]
+            if isinstance(why, np.ndarray):
+                why = why[rows_at]
         return self._readout(start_index + rows_at.start, out[0, rows_at], out[1, rows_at],
-                             ref_hz, locked)
+                             ref_hz, locked, why)
 
     def _readout(self, first_index: int, i_rows, q_rows, ref_hz, locked, why=None) -> np.ndarray:
         """Rows from the low-passed I and Q at the due samples.
@@ -603,14 +650,18 @@ class LockIn(_Detector):
                 rows["vector_amplitude"][k:] = vec
                 # frequency offset: least-squares slope of the unwrapped phase
                 # over the window's rows; its uncertainty from the regression
-                # variance 12 s^2 / (N T^2), s = noise / amplitude the phase
-                # noise, N the window's effective number of independent rows
+                # variance 12 s^2 / (N T^2), s^2 the residual variance of the
+                # phase about the line, N the window's effective number of
+                # independent rows (common practice for a line fit; the
+                # effective count stands in for correlated rows)
                 vt, vp = var[:, 3], var[:, 4]
-                slope = (var[:, 5] - 0.5 * (vt + vp)) / vt  # rad per row
+                cov_tp = var[:, 5] - 0.5 * (vt + vp)
+                slope = cov_tp / vt  # rad per row
+                resid = np.maximum(vp - cov_tp * slope, 0.0)
                 per_row = self.fs / self.output_every / (2.0 * math.pi)
                 rows["offset_hz"][k:] = slope * per_row
-                rows["offset_u_hz"][k:] = (noise / vec) * np.sqrt(
-                    12.0 / self.tables.n_mean[cnt]) / cnt * per_row
+                rows["offset_u_hz"][k:] = np.sqrt(resid * 12.0 / self.tables.n_mean[cnt]) \
+                    / cnt * per_row
         self._fill_common(rows)
         rows["ref_hz"] = ref_hz
         lock = np.ones(m, dtype=bool) if locked is None else np.asarray(locked, dtype=bool).copy()
@@ -618,6 +669,10 @@ class LockIn(_Detector):
         if why is not None:
             reason[:] = np.where(lock, 0, why)
         drifting = np.abs(rows["offset_hz"]) - 2.0 * rows["offset_u_hz"] > self.follow_hz
+        if isinstance(self.tracker, Tracker):
+            # the loop's own indicator rules: a window still holding a
+            # re-acquisition's phase transient would read as drift for a window
+            drifting = np.zeros(m, dtype=bool)
         drift_now = lock & drifting
         reason[drift_now] = 1
         lock[drift_now] = False
