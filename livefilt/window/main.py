@@ -47,8 +47,10 @@ CAUTION_TEXT = (
 HELP_TEXT = """<h3>livefilt live window</h3>
 <p><b>Strip</b>: raw input and each chain's filtered output over the last N seconds
 (min/max per pixel column, so short peaks stay visible).<br>
-<b>Strength</b>: each chain's detected amplitude (RMS, in dBFS or dBV) and SNR over time; the
-large read-out shows the latest values and A − B in dB.<br>
+<b>Strength</b>: each chain's detected amplitude (in dBFS per AES17: a sine reaching full
+scale reads 0 dBFS; or dBV re 1 V RMS) and SNR over time; the large read-out shows the latest
+values and A − B in dB, noise and SNR with ± one standard uncertainty, * marking an amplitude
+read below 10 dB SNR (biased high). FS: fraction of the digitizer's full scale.<br>
 <b>Spectrum</b>: Welch estimate of the last half second, with each chain's gain curve
 (right axis), the modulation frequency (solid) and mains harmonics (dashed).</p>
 <p><b>Settings</b>: every field applies on Enter, at the next block, without stopping
@@ -78,7 +80,8 @@ class MainWindow(QtWidgets.QMainWindow):
         units = engine.source.units
         mains_hz = float(engine.settings.source.options.get("mains_hz", 50.0))
 
-        self.histories = {c.name: RowHistory(tap, c.name) for c in engine.chains}
+        self.histories = {c.name: RowHistory(tap, c.name, units=engine.source.units)
+                          for c in engine.chains}
         self.strip = StripChart(tap, inputs, chains, units, strip_seconds)
         self.strength = StrengthPlots(self.histories, units)
         self.spectrum = SpectrumPanel(engine, inputs, mains_hz)

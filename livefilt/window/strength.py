@@ -18,7 +18,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
-from livefilt.units import si
+from livefilt.units import level_db, level_unit, si
 from livefilt.window import palette
 from livefilt.window.strip import fit_range
 
@@ -38,8 +38,9 @@ class RowHistory:
         History kept, seconds.
     """
 
-    def __init__(self, tap, chain: str, keep_s: float = 60.0):
+    def __init__(self, tap, chain: str, keep_s: float = 60.0, units: str = "FS"):
         self.tap = tap
+        self.units = units
         self.chain = chain
         self.rate_hz = tap.rate_hz
         self.keep_s = keep_s
@@ -55,8 +56,7 @@ class RowHistory:
         self.latest = new[-1]
         self.last_index = int(new["index"][-1])
         amp = new["amplitude"].astype(float)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            amp_db = np.where(amp > 0, 20 * np.log10(amp), np.nan)
+        amp_db = level_db(amp, self.units)  # dBFS per AES17: a full-scale sine is 0 dBFS
         t = new["index"] / self.rate_hz
         keep = np.searchsorted(self.t, t[-1] - self.keep_s) if len(self.t) else 0
         self.t = np.concatenate([self.t[keep:], t])
@@ -80,7 +80,8 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(2)
         self.p_amp = self.addPlot(row=0, col=0)
         self.p_snr = self.addPlot(row=1, col=0)
-        self.p_amp.setLabel("left", f"amplitude (dB{units})")
+        self.units = units
+        self.p_amp.setLabel("left", f"amplitude ({level_unit(units)})")
         self.p_snr.setLabel("left", "SNR (dB)")
         self.p_snr.setLabel("bottom", "time since start (s)")
         self.p_amp.hideAxis("bottom")
@@ -129,8 +130,8 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         snr = snr[np.isfinite(snr)]
         if len(amp):
             # settling rows start near zero: show at most 80 dB below the top
-            top = 20 * np.log10(amp.max())
-            fit_range(self.p_amp, max(20 * np.log10(amp.min()), top - 80), top)
+            top = level_db(amp.max(), self.units)
+            fit_range(self.p_amp, max(level_db(amp.min(), self.units), top - 80), top)
         if len(snr):
             # the first rows (noise estimate still empty) can read 150 dB: keep them out of scale
             lo, hi = np.percentile(snr, [1, 99])
@@ -179,7 +180,8 @@ class BigReadout(QtWidgets.QFrame):
                 lab.setFont(palette.big_font(size, bold=size > 20))
                 lab.setStyleSheet(f"color: {colour};")
                 lab.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
-                sample = "−888.8 dB" if j == 3 else "888.8 m" + units
+                sample = ("−888.8 ±88.8 dB" if j == 3 else
+                          "888.8 m" + units + (" ±888 %" if j == 2 else "*"))
                 _fix_size(lab, sample)
                 grid.addWidget(lab, 1 + k, j)
                 row.append(lab)
@@ -201,9 +203,11 @@ class BigReadout(QtWidgets.QFrame):
             a, n, s = float(r["amplitude"]), float(r["noise"]), float(r["snr_db"])
             amps[name] = a
             la, ln, ls = self.labels[name]
-            la.setText(si(a, self.units))
-            ln.setText(si(n, self.units))
-            ls.setText("—" if not math.isfinite(s) else f"{s:5.1f} dB")
+            la.setText(si(a, self.units) + ("*" if r["biased"] else ""))
+            u, su = float(r["noise_u"]), float(r["snr_u_db"])
+            ln.setText(si(n, self.units) + (f" ±{100 * u:.0f} %" if math.isfinite(u) else ""))
+            ls.setText("—" if not math.isfinite(s) else f"{s:5.1f}"
+                       + (f" ±{su:.1f}" if math.isfinite(su) else "") + " dB")
         if self._pair and all(amps.get(n, 0) > 0 for n in self._pair):
             a, b = self._pair
             self.diff.setText(f"{a} − {b}:  {20 * math.log10(amps[a] / amps[b]):+.2f} dB")
