@@ -95,6 +95,8 @@ __all__ = [
     "LockIn",
     "RmsDetector",
     "make_detector",
+    "detector_figures",
+    "BoxcarLockIn",
 ]
 
 log = logging.getLogger(__name__)
@@ -253,9 +255,11 @@ class DetectorSpec:
 
     Attributes
     ----------
-    type : {"lockin", "rms"}
+    type : {"lockin", "rms", "boxcar"}
     time_constant_s : float
-        Time constant of each output low-pass section, s.
+        Time constant of each output low-pass section, s; for "boxcar" the
+        lag budget ``settling_s`` (the average spans the whole reference
+        periods that fit in it).
     slope_db_oct : int
         6, 12, 18 or 24 dB/octave: 1 to 4 cascaded sections.
     noise_window_s : float
@@ -286,10 +290,23 @@ class DetectorSpec:
         SettingError
             For an unknown key, a missing time constant or a value out of range.
         """
-        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"))
         kind = table.get("type", "lockin")
+        if kind == "boxcar":
+            _check_keys(table, ("type", "settling_s", "noise_window_s"))
+            if "settling_s" not in table:
+                raise SettingError("settling_s", None,
+                                   "is required for a boxcar detector (the lag budget, s)")
+            lag = _number(table, "settling_s")
+            if not lag >= 2.0 / fs:
+                raise SettingError("settling_s", table["settling_s"],
+                                   f"must be at least 2 sample periods, {2.0 / fs:g} s at {fs:g} Hz")
+            window = _number(table, "noise_window_s", default_window_s(1, lag, boxcar_s=lag))
+            if not window > 0:
+                raise SettingError("noise_window_s", table["noise_window_s"], "must be above 0 s")
+            return cls(kind, lag, 24, window)
+        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"))
         if kind not in ("lockin", "rms"):
-            raise SettingError("type", kind, 'must be "lockin" or "rms"')
+            raise SettingError("type", kind, 'must be "lockin", "rms" or "boxcar"')
         if "time_constant_s" not in table:
             raise SettingError("time_constant_s", None, "is required (seconds, > 0)")
         tau = _number(table, "time_constant_s")
@@ -306,6 +323,9 @@ class DetectorSpec:
 
     def to_mapping(self) -> dict:
         """The table that :meth:`from_mapping` turns back into this spec."""
+        if self.type == "boxcar":
+            return {"type": "boxcar", "settling_s": self.time_constant_s,
+                    "noise_window_s": self.noise_window_s}
         return {"type": self.type, "time_constant_s": self.time_constant_s,
                 "slope_db_oct": self.slope_db_oct, "noise_window_s": self.noise_window_s}
 
@@ -339,7 +359,53 @@ def make_detector(spec: DetectorSpec, reference: ReferenceSpec | None, fs: float
     if reference is None:
         raise SettingError("reference", None,
                            "a lock-in needs frequency_hz or channel in [reference]")
+    if spec.type == "boxcar":
+        if reference.frequency_hz is None:
+            raise SettingError("reference", None, "a boxcar detector needs frequency_hz in "
+                               "[reference] (its average spans whole periods)")
+        return BoxcarLockIn(spec, reference, fs, int(output_every), exact_path)
     return LockIn(spec, reference, fs, int(output_every), exact_path)
+
+
+def detector_figures(spec: DetectorSpec, fs: float, frequency_hz: float | None = None,
+                     band: float = 0.01) -> dict:
+    """ENBW, settling and their product for one detector, for design reports.
+
+    Returns ``{"enbw_hz", "settling_s", "enbw_x_settling", "ripple", "note"}``:
+    ``settling_s`` to within ``band`` of the final value, the 2 f0 ripple
+    accounted (``ripple``, relative to the signal: the RC sections' gain at
+    2 f0, ``(1 + (4 pi f0 tau)^2)^(-n/2)``, since the mixer's 2 f0 product
+    equals the wanted one): the step's tail must fall within ``band -
+    ripple``; a ripple at or above the band never settles (``inf``, with a
+    note).  Lock-in: ENBW and settling in closed form
+    (REFERENCES rows 3a, 3c); boxcar: ``1 / (2 T)`` and exactly ``T``.
+    """
+    if spec.type == "boxcar":
+        if frequency_hz is None:
+            raise SettingError("reference", None, "a boxcar detector needs frequency_hz")
+        m = max(1, int(math.floor(spec.time_constant_s * frequency_hz + 1e-9)))
+        n = max(1, int(round(m * fs / frequency_hz)))
+        t = n / fs
+        return {"enbw_hz": fs / (2 * n), "settling_s": t, "enbw_x_settling": 0.5,
+                "ripple": 0.0,
+                "note": f"average over {m} whole reference periods ({t:g} s): no 2 f0 ripple"}
+    n = spec.sections
+    tau = spec.time_constant_s
+    enbw = gamma(n - 0.5) / (4.0 * math.sqrt(math.pi) * gamma(n) * tau)
+    settle = float(tau * gammaincinv(n, 1.0 - band))
+    ripple = float("nan")
+    note = ""
+    if spec.type == "lockin" and frequency_hz is not None:
+        ripple = (1.0 + (4.0 * math.pi * frequency_hz * tau) ** 2) ** (-n / 2.0)
+        if ripple >= band:
+            note = (f"2 f0 ripple {100 * ripple:.2g} % of the signal exceeds the "
+                    f"{100 * band:g} % band: the output never settles (a boxcar detector "
+                    "averaging whole periods removes it)")
+            settle = math.inf
+        else:  # the step's tail must fit in what the ripple leaves of the band
+            settle = float(tau * gammaincinv(n, 1.0 - (band - ripple)))
+    return {"enbw_hz": enbw, "settling_s": settle, "enbw_x_settling": enbw * settle,
+            "ripple": ripple, "note": note}
 
 
 # -- detectors --------------------------------------------------------------
@@ -708,6 +774,58 @@ class LockIn(_Detector):
         cycles = self._buffer("cycles", (n,))
         np.add(ramp, frac0, out=cycles)
         return cycles
+
+
+class BoxcarLockIn(LockIn):
+    """Dual-phase lock-in whose output filter is a moving average over whole
+    reference periods: the matched filter for a held target at the lag limit.
+
+    ``N = round(M fs / f0)`` samples, ``M = floor(settling_s f0)`` periods
+    (at least one): the average of the last N mixer products, read at each
+    output row (a decimation of the moving average; the running sums are
+    recomputed exactly every N samples, :class:`~livefilt.dsp.noise.WindowStats`).
+    A whole number of periods nulls the 2 f0 product (to the half-sample
+    rounding of N).  ENBW ``fs / (2 N) = 1 / (2 T)``; a step settles
+    completely after ``T = N / fs``, linearly (``settling_s(p) = p T``).
+    ENBW x settling is 0.5, against 0.785 at best for n RC sections
+    (regularised gamma function, REFERENCES row 3c).
+    Same outputs as :class:`LockIn`; straightforward numpy path only.
+    """
+
+    def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
+                 output_every: int, exact_path: bool = False):
+        f0 = reference.frequency_hz
+        self.periods = max(1, int(math.floor(spec.time_constant_s * f0 + 1e-9)))
+        self.length = max(1, int(round(self.periods * fs / f0)))
+        self.average_s = self.length / fs
+        super().__init__(spec, reference, fs, output_every, True)
+        self.tables = WindowTables(self.window_rows, output_every / self.fs, 1, self.average_s,
+                                   boxcar_s=self.average_s)
+
+    @property
+    def enbw_hz(self) -> float:
+        """``fs / (2 N)``: the one-sided ENBW of an N-sample average (closed form)."""
+        return self.fs / (2.0 * self.length)
+
+    def settling_s(self, fraction: float) -> float:
+        """``fraction * T``: a step through a moving average rises linearly."""
+        if not 0 < fraction < 1:
+            raise SettingError("fraction", fraction, "must be above 0 and below 1")
+        return fraction * self.average_s
+
+    @property
+    def follow_hz(self) -> float:
+        """Offset at which the average's gain ``sin(pi f T) / (pi f T)`` is 0.99."""
+        return 0.24509 / (math.pi * self.average_s)  # sin x / x = 0.99 at x = 0.24509
+
+    def reset(self) -> None:
+        super().reset()
+        self._avg = WindowStats(self.length, 2)
+
+    def _lowpass(self, work: np.ndarray) -> np.ndarray:
+        """The moving average over N samples in place of the RC sections."""
+        mean, _, _ = self._avg.update(work.T)
+        return mean.T
 
 
 class RmsDetector(_Detector):

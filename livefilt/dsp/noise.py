@@ -89,15 +89,21 @@ def _integrals(n_sections: int) -> tuple[float, float]:
 _INTEGRALS: dict[int, tuple[float, float]] = {}
 
 
-def default_window_s(n_sections: int, tau_s: float, dof: float = DEFAULT_DOF) -> float:
+def default_window_s(n_sections: int, tau_s: float, dof: float = DEFAULT_DOF,
+                     boxcar_s: float | None = None) -> float:
     """The noise window giving ``dof`` effective degrees of freedom, at least 2 s.
 
     Dense rows: ``nu = (T - a)^2 / (T b)`` with ``a = tau int rho``, ``b =
-    tau int rho^2``; solved for ``T``.  36 tau for one section, 150 tau for four.
+    tau int rho^2``; solved for ``T``.  36 tau for one section, 150 tau for
+    four; a moving average over ``boxcar_s`` = A has ``a = A``, ``b = 2 A / 3``
+    (triangle correlation): 23.5 A.
     """
-    if n_sections not in _INTEGRALS:
-        _INTEGRALS[n_sections] = _integrals(n_sections)
-    a, b = (v * tau_s for v in _INTEGRALS[n_sections])
+    if boxcar_s is not None:
+        a, b = boxcar_s, 2.0 * boxcar_s / 3.0
+    else:
+        if n_sections not in _INTEGRALS:
+            _INTEGRALS[n_sections] = _integrals(n_sections)
+        a, b = (v * tau_s for v in _INTEGRALS[n_sections])
     t = a + dof * b / 2 + math.sqrt(dof * b * a + (dof * b / 2) ** 2)
     return max(2.0, t)
 
@@ -105,7 +111,7 @@ def default_window_s(n_sections: int, tau_s: float, dof: float = DEFAULT_DOF) ->
 class WindowTables:
     """Per-row-count corrections for a window of up to ``rows`` rows spaced
     ``dt_s`` apart, from an output low-pass of ``n_sections`` sections of
-    time constant ``tau_s``.
+    time constant ``tau_s`` (or a moving average over ``boxcar_s``).
 
     Attributes (arrays indexed by the row count ``m``, 0 .. rows)
     ----------
@@ -115,9 +121,13 @@ class WindowTables:
     n_mean : effective number of independent rows for a mean, ``m^2 / A``.
     """
 
-    def __init__(self, rows: int, dt_s: float, n_sections: int, tau_s: float):
+    def __init__(self, rows: int, dt_s: float, n_sections: int, tau_s: float,
+                 boxcar_s: float | None = None):
         lags = np.arange(rows, dtype=np.float64)
-        rho = correlation(n_sections, lags * dt_s / tau_s)
+        if boxcar_s is not None:  # a moving average of length T: triangle 1 - |u|/T
+            rho = np.maximum(0.0, 1.0 - lags * dt_s / boxcar_s)
+        else:
+            rho = correlation(n_sections, lags * dt_s / tau_s)
         m = np.arange(rows + 1, dtype=np.float64)
         a = self._pair_sums(rho, m)
         b = self._pair_sums(rho * rho, m)

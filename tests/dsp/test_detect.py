@@ -371,7 +371,11 @@ def test_reference_setting_errors(table, field, match):
 
 @pytest.mark.parametrize("table,field,match", [
     ({"time_constant_s": 0.1, "order": 2}, "order", "unknown key; known: type"),
-    ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin" or "rms"'),
+    # (the allowed list grew by "boxcar", issue 13 section 5)
+    ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin", "rms" or "boxcar"'),
+    ({"type": "boxcar"}, "settling_s", "is required for a boxcar"),
+    ({"type": "boxcar", "settling_s": 0.1, "time_constant_s": 0.1}, "time_constant_s",
+     "unknown key; known: type, settling_s"),
     ({"type": "rms"}, "time_constant_s", "is required"),
     ({"time_constant_s": "slow"}, "time_constant_s", "must be a finite number"),
     ({"time_constant_s": -1}, "time_constant_s", "at least 2 sample periods, 4.16667e-05 s"),
