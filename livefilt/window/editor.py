@@ -239,7 +239,9 @@ class ReferenceEditor(QtWidgets.QGroupBox):
     def table(self) -> dict:
         """The ``[reference]`` table as the fields now read (possibly invalid)."""
         ref = self.engine.reference
-        t = {"lock_range": ref.lock_range} if ref is not None else {}
+        # keep what the form does not show (lock range, tracking, a measured channel)
+        t = {k: v for k, v in ref.to_mapping().items() if k not in self.fields} \
+            if ref is not None else {}
         t.update({k: f.value() for k, f in self.fields.items() if f.text().strip()})
         return t
 
@@ -403,7 +405,7 @@ class ChainEditor(QtWidgets.QWidget):
 
     def _titles(self) -> None:
         for j, (form, spec) in enumerate(zip(self.stages, self.settings.stages)):
-            form.setTitle(f"stage {j + 1}: {describe(spec)}")
+            form.setTitle(f"stage {j + 1}: {describe(spec, self.engine.rate_hz)}")
 
     def _say(self, text: str, error: bool = False) -> None:
         _say(self.message, text, error)
