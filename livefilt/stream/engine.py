@@ -130,6 +130,9 @@ class Engine:
         self._stop_at: int | None = None
         self.error: BaseException | None = None
         self.finished = threading.Event()
+        # markers known in advance (the source's truth or replayed markers, --marks)
+        self._schedule: list[dict] = []
+        self.schedule_markers(getattr(self.source, "markers", None) or [])
 
     # -- construction helpers -------------------------------------------
     def _channel_index(self, chain: ChainSettings, i: int) -> int:
@@ -187,9 +190,17 @@ class Engine:
             s = replace(s, reference=self.reference)
         return s
 
-    def add_marker(self, distance_m: float | None, note: str = "") -> dict:
-        """Mark the current acquisition time with the target distance and a note."""
-        t = self.stats.index / self.rate_hz
+    def schedule_markers(self, marks) -> None:
+        """Add markers at given times of the run's data (``time_s``,
+        ``distance_m`` or none while moving, ``note``); each is added when the
+        engine has processed its time.  Call before :meth:`start`."""
+        keep = [{k: v for k, v in m.items() if k in ("time_s", "distance_m", "note")} for m in marks]
+        self._schedule = sorted(self._schedule + keep, key=lambda m: m["time_s"])
+
+    def add_marker(self, distance_m: float | None, note: str = "", time_s: float | None = None) -> dict:
+        """Mark the current acquisition time (or ``time_s``) with the target
+        distance (None: the target is moving) and a note."""
+        t = self.stats.index / self.rate_hz if time_s is None else float(time_s)
         with self._rec_lock:
             if self.recorder is not None:
                 m = self.recorder.add_marker(t, distance_m, note)
@@ -346,6 +357,9 @@ class Engine:
                     for c, rows in zip(self.chains, rows_all):
                         if len(rows):
                             rec.write_rows(c.name, rows)
+        while self._schedule and self._schedule[0]["time_s"] * self.rate_hz <= st.index:
+            m = self._schedule.pop(0)
+            self.add_marker(m.get("distance_m"), m.get("note", ""), m["time_s"])
         for fn in self.listeners:
             fn(self, start, data, self._y[:, :n], rows_all)
         st.busy_s += time.perf_counter() - t0
