@@ -46,6 +46,10 @@ walk_m : list of float, optional
     hold begins, a "moving" marker where each move begins; their note says
     they come from the simulation).
 hold_s, move_s : float, default 4 and 1
+adc_bits : int, default 16
+    Resolution of the simulated ADC, 8 to 24 bits.  At 16 bits the scene's
+    own noise dithers the quantiser only partly, so its error is not quite
+    white; 24 bits makes it negligible (the range tests use that).
 sky : "clouds" | "clear", default "clouds"
     "clear" holds the sunlight steady (a known, constant noise density, as
     :meth:`Scene.white_density_fs` computes it).
@@ -210,12 +214,13 @@ class SimulatedSource(Source):
         "hold_s": "walk-away scene: seconds at each distance (default 4)",
         "move_s": "walk-away scene: seconds moving between distances (default 1)",
         "sky": '"clouds" (default, passing clouds) or "clear" (steady sunlight)',
+        "adc_bits": "simulated ADC resolution, 8 to 24 bits (default 16)",
     }
 
     def __init__(self, rate_hz: float, seed: int = 7, pace: str = "realtime",
                  led_hz: float = 1370.0, mains_hz: float = 50.0, target: str = "canopy",
                  distance_m: float | None = None, walk_m=None, hold_s: float = 4.0,
-                 move_s: float = 1.0, sky: str = "clouds"):
+                 move_s: float = 1.0, sky: str = "clouds", adc_bits: int = 16):
         self.rate_hz = float(rate_hz)
         self.channels = 2
         self.channel_names = ["photodiode", "led"]
@@ -223,6 +228,7 @@ class SimulatedSource(Source):
         self.realtime = pace == "realtime"
         self.scene = Scene(self.rate_hz, led_hz, mains_hz, target, distance_m, seed,
                            walk_m, hold_s, move_s)
+        self.scene.adc_bits = int(adc_bits)
         self.sky = sky
         self.device = (f"greenhouse bench (simulated, seed {seed}, LED {led_hz:g} Hz, "
                        f"mains {mains_hz:g} Hz, {target}"
@@ -276,11 +282,14 @@ class SimulatedSource(Source):
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not lo <= v <= 3600:
                 raise SettingError(f"source.{key}", v, f"must be a number of seconds from {lo:g} to 3600")
             times[key] = float(v)
+        bits = options.get("adc_bits", 16)
+        if isinstance(bits, bool) or not isinstance(bits, int) or not 8 <= bits <= 24:
+            raise SettingError("source.adc_bits", bits, "must be a whole number of bits from 8 to 24")
         sky = options.get("sky", "clouds")
         if sky not in ("clouds", "clear"):
             raise SettingError("source.sky", sky, 'must be "clouds" or "clear"')
         src = cls(rate_hz, seed, pace, float(led), float(mains), target,
-                  None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky)
+                  None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky, bits)
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
         return src
 

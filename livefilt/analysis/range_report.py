@@ -36,7 +36,8 @@ Method
 5. **Range** where ``c d^-k / sigma`` meets the SNR threshold, with a 95 %
    interval by the delta method on ``ln d`` from the covariance of
    ``(ln c, k)`` and the noise's own uncertainty ``var(ln sigma) =
-   1 / (2 dof)``; and the measured range, the largest distance whose point
+   1 / (2 dof)``, the quantile from Student's t with the noise's degrees
+   of freedom (the noise is estimated); and the measured range, the largest distance whose point
    is still at or above the threshold.
 6. **Advisor** (``--want-m D``): assuming the noise near the reference is
    white, noise density ``sigma / sqrt(ENBW)``; the ENBW that reaches D is
@@ -63,10 +64,9 @@ from livefilt.dsp.detect import DetectorSpec, ReferenceSpec, make_detector
 from livefilt.errors import LivefiltError, RecordingError, SettingError
 from livefilt.runs.record import read_run
 
-__all__ = ["main", "build_report", "segment_amplitudes", "row_correlation", "effective_samples",
+__all__ = ["main", "analyse", "build_report", "segment_amplitudes", "row_correlation", "effective_samples",
            "tone_settling_s", "fit_power_law", "ChainGroup"]
 
-Z95 = 1.959963984540054  # two-sided 95 % normal quantile (scipy.stats.norm.ppf(0.975))
 COLOURS = ("#1f6f78", "#c98a1b", "#5a7d2a", "#8b3a62", "#4a5a8c", "#a0522d")  # the window's chain colours
 MARKERS = ("o", "s", "^", "D", "v", "P")
 MIN_ROWS = 5
@@ -342,8 +342,10 @@ def _analyse(g: ChainGroup, snr_db: float, want_m: float | None) -> None:
     grad = np.array([1 / k, -ln_d / k])
     var_ln_d = float(grad @ cov @ grad) + var_ln_sigma / k ** 2
     sd = math.sqrt(max(var_ln_d, 0.0))
-    res.update(range_m=math.exp(ln_d), range_low_m=math.exp(ln_d - Z95 * sd),
-               range_high_m=math.exp(ln_d + Z95 * sd))
+    from scipy.stats import t as student_t
+    z = float(student_t.ppf(0.975, dof))  # the noise is estimated: Student's t, not the normal
+    res.update(range_m=math.exp(ln_d), range_low_m=math.exp(ln_d - z * sd),
+               range_high_m=math.exp(ln_d + z * sd), interval_quantile=z)
     if want_m:
         res["advisor"] = _advise(g, want_m, lc, k, sigma, thr)
 
@@ -467,45 +469,55 @@ POINT_COLUMNS = ["run", "chain", "distance_m", "note", "t_start_s", "t_end_s", "
                  "snr_db", "snr_db_err"]
 
 
-def build_report(folders, snr_db: float = 10.0, want_m: float | None = None, out=None,
-                 stream=None) -> dict:
-    """Write the report for ``folders`` into ``out``; returns range.toml's document."""
-    from livefilt.progress import progress
-    stream = stream if stream is not None else sys.stdout
+def analyse(folders, snr_db: float = 10.0, want_m: float | None = None):
+    """Segments, noise, fit, range and advice for ``folders`` (nothing written);
+    returns ``(groups, doc)``, doc being range.toml's document."""
     if not math.isfinite(snr_db):
         raise SettingError("--snr-db", snr_db, "must be a finite number of dB")
     if want_m is not None and not (math.isfinite(want_m) and want_m > 0):
         raise SettingError("--want-m", want_m, "must be a distance above 0 m")
     folders = [str(f) for f in folders]
-    with progress(len(folders) + 2, "range report", "step") as bar:
-        groups, loaded = _groups(folders)
-        bar.update(len(folders))
-        if not groups:
-            raise LivefiltError(f"{folders[0]}: no lock-in chain in these runs: the range report "
-                                "needs in-phase and quadrature rows")
-        if not any(m.get("distance_m") is not None for _, run, *_ in loaded for m in run.markers):
-            raise LivefiltError(f"{folders[0]}: no distance markers in these runs: add them while "
-                                "recording (type a distance and Enter) or replay with --marks FILE.csv")
-        for g in groups:
-            _analyse(g, snr_db, want_m)
+    groups, loaded = _groups(folders)
+    if not groups:
+        raise LivefiltError(f"{folders[0]}: no lock-in chain in these runs: the range report "
+                            "needs in-phase and quadrature rows")
+    if not any(m.get("distance_m") is not None for _, run, *_ in loaded for m in run.markers):
+        raise LivefiltError(f"{folders[0]}: no distance markers in these runs: add them while "
+                            "recording (type a distance and Enter) or replay with --marks FILE.csv")
+    for g in groups:
+        _analyse(g, snr_db, want_m)
+    doc = {"report": {"runs": folders, "snr_db_threshold": snr_db,
+                      "method": "vector mean per segment, perpendicular noise pooled and "
+                                "corrected for correlated rows, weighted power-law fit, "
+                                "95 % interval by the delta method"},
+           "chains": {}}
+    if want_m:
+        doc["report"]["want_m"] = want_m
+    for g in groups:
+        entry = dict(g.result)
+        entry.update(settling_margin_s=g.settling_s, filter_settling_s=g.filter_settling_s,
+                     enbw_hz=g.enbw_hz, runs=sorted(set(g.runs)), settings=g.settings)
+        if g.skipped:
+            entry["skipped"] = g.skipped
+        doc["chains"][g.label] = _clean(entry)
+    return groups, doc
+
+
+def build_report(folders, snr_db: float = 10.0, want_m: float | None = None, out=None,
+                 stream=None) -> dict:
+    """Write the report for ``folders`` into ``out`` (default: ``range-RUN``
+    beside the first run); returns range.toml's document."""
+    from livefilt.progress import progress
+    stream = stream if stream is not None else sys.stdout
+    folders = [str(f) for f in folders]
+    with progress(4, "range report", "step") as bar:
+        groups, doc = analyse(folders, snr_db, want_m)
+        bar.update(1)
         out = Path(out) if out else Path(folders[0]).parent / f"range-{Path(folders[0]).name}"
         rep = ReportFolder(out, "Detection range")
-        doc = {"report": {"runs": folders, "snr_db_threshold": snr_db,
-                          "method": "vector mean per segment, perpendicular noise pooled and "
-                                    "corrected for correlated rows, weighted power-law fit, "
-                                    "95 % interval by the delta method"},
-               "chains": {}}
-        if want_m:
-            doc["report"]["want_m"] = want_m
-        for g in groups:
-            entry = {k: v for k, v in g.result.items()}
-            entry.update(settling_margin_s=g.settling_s, filter_settling_s=g.filter_settling_s,
-                         enbw_hz=g.enbw_hz, runs=sorted(set(g.runs)), settings=g.settings)
-            if g.skipped:
-                entry["skipped"] = g.skipped
-            doc["chains"][g.label] = _clean(entry)
         rep.toml("range.toml", doc)
         rep.csv("points.csv", POINT_COLUMNS, _points_rows(groups))
+        bar.update(1)
         _figures(rep, groups, snr_db)
         bar.update(1)
         _page(rep, groups, doc, snr_db, want_m)
