@@ -236,6 +236,7 @@ class SimulatedSource(Source):
                           if walk_m is not None else "") + ")")
         self.markers = self.scene.walk_markers()
         self._end = None if walk_m is None else int(round(self.scene.walk_s * self.rate_hz))
+        self.length_s = self.scene.walk_s
         self.reference_hint = {"frequency_hz": led_hz, "phase_deg": 0.0}
         self._seed = seed
         self._cloud_phase = np.random.default_rng([seed, 99]).uniform(0, 2 * np.pi, 3)

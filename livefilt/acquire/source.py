@@ -80,6 +80,9 @@ class Source:
         ``distance_m`` or none while the target moves, ``note``): a simulated
         scene's truth, a replayed run's own markers.  The engine adds each one
         when its time has been processed.
+    length_s : float or None
+        How long the source's data lasts when it ends by itself (a file, a
+        walk-away scene); None for a live device.
     """
 
     driver: ClassVar[str] = ""
@@ -93,6 +96,7 @@ class Source:
     realtime: bool = True
     reference_hint: dict | None = None
     markers: list = []
+    length_s: float | None = None
 
     # -- construction --------------------------------------------------
     @classmethod

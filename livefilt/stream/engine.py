@@ -31,6 +31,7 @@ from livefilt.stream.chain import Chain
 from livefilt.config import ChainSettings, Settings, parse_chain
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError
+from livefilt.threads import Worker
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
 from livefilt.acquire.ring import Ring
 from livefilt.dsp.sections import FilterBank
@@ -120,6 +121,7 @@ class Engine:
         self.stats = EngineStats()
         self.latest: dict[str, np.void] = {}
         self.recorder: RunWriter | None = None
+        self.recording_error: str | None = None  # the last recording's failure, one line
         self.listeners: list = []  # callables (engine, start_index, raw, outputs, rows)
         self._pending: list[tuple[int, ChainSettings]] = []
         self._pending_lock = threading.Lock()
@@ -190,12 +192,14 @@ class Engine:
             s = replace(s, reference=self.reference)
         return s
 
-    def schedule_markers(self, marks) -> None:
+    def schedule_markers(self, marks, replace: bool = False) -> None:
         """Add markers at given times of the run's data (``time_s``,
         ``distance_m`` or none while moving, ``note``); each is added when the
-        engine has processed its time.  Call before :meth:`start`."""
+        engine has processed its time.  ``replace`` drops the schedule so far
+        (a replayed run's own markers).  Call before :meth:`start`."""
         keep = [{k: v for k, v in m.items() if k in ("time_s", "distance_m", "note")} for m in marks]
-        self._schedule = sorted(self._schedule + keep, key=lambda m: m["time_s"])
+        base = [] if replace else self._schedule
+        self._schedule = sorted(base + keep, key=lambda m: m["time_s"])
 
     def add_marker(self, distance_m: float | None, note: str = "", time_s: float | None = None) -> dict:
         """Mark the current acquisition time (or ``time_s``) with the target
@@ -219,7 +223,8 @@ class Engine:
             info["reference"] = self.reference.to_mapping() if self.reference else None
             info["start_index"] = self.stats.index
             self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
-                                      self.rate_hz, self.source.channels)
+                                      self.rate_hz, self.source.channels,
+                                      wait_when_full=not self.source.realtime)
             return self.recorder
 
     def stop_recording(self) -> RunWriter | None:
@@ -227,12 +232,17 @@ class Engine:
             rec, self.recorder = self.recorder, None
         if rec is not None:
             rec.close(self.counts())
+            if rec.failed:
+                self.recording_error = rec.failed
         return rec
 
     def counts(self) -> dict:
         st = self.stats
         d = {"frames_processed": st.frames, "dropped_frames": st.dropped,
              "ring_overruns": st.overruns, "device_events": st.device_events}
+        rec = self.recorder
+        if rec is not None:
+            d.update(recorder_dropped_frames=rec.dropped_frames, recorder_dropped_rows=rec.dropped_rows)
         d.update({f"source_{k}": v for k, v in self.source.status().items()
                   if isinstance(v, (int, float, str, bool))})
         return d
@@ -241,7 +251,7 @@ class Engine:
     def start(self, duration_s: float | None = None) -> None:
         """Start the source and the engine thread; return at once."""
         self._begin(duration_s)
-        self._thread = threading.Thread(target=self._loop, name="livefilt-engine", daemon=True)
+        self._thread = Worker(self._loop, "livefilt-engine")
         self._thread.start()
 
     def run(self, duration_s: float | None = None) -> None:
@@ -275,6 +285,12 @@ class Engine:
         finally:
             self.stop_recording()
 
+    @property
+    def recording_failed(self) -> str | None:
+        """One line when the current or last recording stopped on a write error."""
+        rec = self.recorder
+        return (rec.failed if rec is not None else None) or self.recording_error
+
     def _loop(self) -> None:
         try:
             while not self._stop.is_set():
@@ -285,8 +301,13 @@ class Engine:
             self.error = e
             log.debug("engine stopped on error", exc_info=True)
         finally:
-            self._shutdown()
-            self.finished.set()
+            try:
+                self._shutdown()
+            except BaseException as e:  # the thread policy: keep it, never hang the waiter
+                self.error = self.error or e
+                log.debug("engine shutdown failed", exc_info=True)
+            finally:
+                self.finished.set()
 
     def step(self, timeout: float = 0.2) -> bool:
         """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
