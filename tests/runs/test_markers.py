@@ -71,3 +71,20 @@ def test_bad_marks_file_names_the_row(tmp_path, body, where):
 def test_missing_marks_file(tmp_path):
     with pytest.raises(LivefiltError, match="no such marks file"):
         read_marks(tmp_path / "nope.csv")
+
+
+def test_typed_markers_during_a_headless_run(tmp_path):
+    """Lines typed into ``livefilt run`` (here through a pipe) become markers;
+    a bad line gets a one-line hint and changes nothing."""
+    import subprocess
+    import sys
+    import tomllib
+    p = subprocess.Popen([sys.executable, "-m", "livefilt", "run", "--duration", "3", "--out", str(tmp_path)],
+                         stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    out, err = p.communicate("1.5 m by the door\nfar away\n6 ft\n", timeout=60)
+    assert p.returncode == 0 and "Traceback" not in err, err
+    assert "marker at" in out and "1.5 m (by the door)" in out and "not a marker:" in out
+    (folder,) = tmp_path.iterdir()
+    marks = tomllib.loads((folder / "run.toml").read_text())["markers"]
+    assert [m["distance_m"] for m in marks] == [1.5, 6 * 0.3048]
+    assert marks[0]["note"] == "by the door"
