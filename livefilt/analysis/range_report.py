@@ -12,7 +12,8 @@ Method
    cascade's settling from above).
 2. **Amplitude per segment** from the in-phase/quadrature rows: the vector
    mean ``z = mean(I) + j mean(Q)``.  A mean of magnitudes is biased up by
-   noise (the Rice distribution's mean, Rice 1944; tested against
+   noise (the Rice distribution's mean: S. O. Rice, Bell Syst. Tech. J. 23, 1944,
+   from memory; tested against
    ``scipy.stats.rice``); the vector mean is not.  For the fit each
    segment's ``z`` is projected on the chain's signal phase (the phase of
    the amplitude-weighted sum of the segments' ``z``): an unbiased amplitude
@@ -416,9 +417,13 @@ def _figures(rep: ReportFolder, groups, snr_db: float) -> list[str]:
         ax.axhline(sigma, color=col, lw=0.8, ls=":", alpha=0.8)
         ax.axhline(sigma * thr, color=col, lw=0.9, ls="--", alpha=0.8)
         snr_pts = [s for s in segs if s.along > 0]
+        lo_err, hi_err = [], []
+        for s in snr_pts:  # one sigma of the amplitude, mapped through 20 log10 (asymmetric)
+            hi_err.append(20 * math.log10((s.along + s.along_err) / s.along))
+            lo_err.append(20 * math.log10(s.along / (s.along - s.along_err))
+                          if s.along > 1.25 * s.along_err else 12.0)
         ax2.errorbar([s.distance_m for s in snr_pts], [s.snr_db for s in snr_pts],
-                     yerr=[s.snr_db_err if math.isfinite(s.snr_db_err) else 0 for s in snr_pts],
-                     fmt=mk, color=col, ms=5, capsize=2, label=f"{g.label}")
+                     yerr=[lo_err, hi_err], fmt=mk, color=col, ms=5, capsize=2, label=f"{g.label}")
         if "range_m" in r:
             top = max(dmax, r["range_high_m"]) * 1.4
             xs = np.geomspace(dmin / 1.3, top, 200)
@@ -539,7 +544,7 @@ def _clean(v):
 def _summary_rows(groups):
     for g in groups:
         r = g.result
-        k = f"{r['exponent']:.2f} ± {r['exponent_err']:.2f}" if "exponent" in r else "—"
+        k = f"{r['exponent']:.3f} ± {r['exponent_err']:.3f}" if "exponent" in r else "—"
         rng = (f"{_fmt_m(r['range_m'])} ({r['range_low_m']:.3g}–{r['range_high_m']:.3g})"
                if "range_m" in r else r.get("problem", "—"))
         yield [g.label, k, rng, _fmt_m(r.get("measured_range_m")), f"{g.settling_s:.2f} s",
@@ -588,8 +593,11 @@ def _page(rep: ReportFolder, groups, doc, snr_db, want_m):
         + rep.table(["run", "chain", "distance (m)", "note", "used (s)", "rows", "amplitude",
                      "±", "SNR (dB)"], pts))
     skipped = [f"{g.label}: {s}" for g in groups for s in g.skipped]
-    method = __doc__.split("Method\n------\n", 1)[1].strip()
-    rep.section("Method and settings", rep.paragraphs(*[" ".join(p.split()) for p in method.split("\n\n")])
+    import re
+    method = __doc__.split("Method\n------\n", 1)[1].strip().replace("**", "").replace("``", "")
+    method = method.replace(":func:", "").replace("`", "")
+    steps = [" ".join(p.split()) for p in re.split(r"\n(?=\d\. )", method)]
+    rep.section("Method and settings", rep.paragraphs(*steps)
                 + rep.table(["chain", "settings", "ENBW", "settling margin"],
                             [[g.label, json.dumps(g.settings, default=str), f"{g.enbw_hz:.4g} Hz",
                               f"{g.settling_s:.3g} s (filters {g.filter_settling_s:.3g} s)"] for g in groups])
