@@ -27,8 +27,9 @@ Method
    autocorrelation of n identical RC sections in closed form (see
    :func:`row_correlation`); ``N_mean -> 2 ENBW T`` for long segments.
    Pooled over the segments of one chain's settings, weighted by their
-   degrees of freedom ``n / (1 + 2 sum (1 - k/n) rho^2)`` (Bartlett 1946,
-   variance of a correlated series' sample variance).
+   degrees of freedom ``n / (1 + 2 sum (1 - k/n) rho^2)`` (the variance of a
+   correlated series' sample variance: M. S. Bartlett, J. R. Stat. Soc.
+   Suppl. 8, 1946; from memory).
 4. **Fit** ``amplitude = c d^-k`` by weighted least squares in the linear
    domain (scipy.optimize.curve_fit, absolute sigma; scaled up by the
    reduced chi-square when that exceeds 1, common practice).  About 2: the
