@@ -66,7 +66,7 @@ from livefilt.dsp.detect import DetectorSpec, ReferenceSpec, make_detector
 from livefilt.errors import LivefiltError, RecordingError, SettingError
 from livefilt.runs.record import read_run
 
-__all__ = ["main", "analyse", "build_report", "segment_amplitudes", "row_correlation", "effective_samples",
+__all__ = ["main", "analyse", "build_report", "group_for_chain", "add_segments", "analyse_group", "segment_amplitudes", "row_correlation", "effective_samples",
            "tone_settling_s", "fit_power_law", "ChainGroup"]
 
 COLOURS = ("#1f6f78", "#c98a1b", "#5a7d2a", "#8b3a62", "#4a5a8c", "#a0522d")  # the window's chain colours
@@ -250,27 +250,41 @@ def _groups(folders):
                 det = make_detector(c.detector, reference, rate, every) if reference else None
                 if det is None:
                     continue
-                sos = chain_sos(c.stages, rate)
-                f_set = tone_settling_s(sos, rate, ref_hz) if ref_hz else 0.0
                 label = c.name
                 if any(g.name == c.name for g in groups.values()):
                     label = f"{c.name} ({Path(folder).name})"
-                groups[key] = ChainGroup(label, c.name, mapping, rate, c.detector.time_constant_s,
-                                         c.detector.sections, c.detector.slope_db_oct, det.enbw_hz,
-                                         f_set + det.settling_s(0.99), f_set, det)
+                groups[key] = group_for_chain(label, c.name, mapping, rate, det,
+                                              chain_sos(c.stages, rate), ref_hz)
             g = groups[key]
             g.runs.append(str(folder))
             _segments(g, run, settings, folder)
     return list(groups.values()), loaded
 
 
+def group_for_chain(label: str, name: str, mapping: dict, fs: float, detector, sos,
+                    ref_hz: float | None) -> ChainGroup:
+    """A :class:`ChainGroup` for one chain: its ENBW and its settling margin
+    (filter stages' tone settling at ``ref_hz`` plus the detector's 99 %)."""
+    f_set = tone_settling_s(sos, fs, ref_hz) if ref_hz else 0.0
+    spec = detector.spec
+    return ChainGroup(label, name, mapping, fs, spec.time_constant_s, spec.sections,
+                      spec.slope_db_oct, detector.enbw_hz, f_set + detector.settling_s(0.99),
+                      f_set, detector)
+
+
 def _segments(g: ChainGroup, run, settings, folder):
     rows = run.chain_rows(g.name)
     t = rows.get("time_s", np.zeros(0))
-    ii, qq = rows.get("in_phase", np.zeros(0)), rows.get("quadrature", np.zeros(0))
     dt = settings.output.interval_s
     end = float(t[-1]) + dt if len(t) else 0.0
-    marks = sorted(run.markers, key=lambda m: m.get("time_s", 0.0))
+    add_segments(g, t, rows.get("in_phase", np.zeros(0)), rows.get("quadrature", np.zeros(0)),
+                 run.markers, dt, end, Path(folder).name)
+
+
+def add_segments(g: ChainGroup, t, ii, qq, markers, dt: float, end: float, run_name: str) -> None:
+    """Cut rows (times ``t``, in-phase ``ii``, quadrature ``qq``) at ``markers``
+    into segments of ``g`` (see the module's method, steps 1 to 3)."""
+    marks = sorted(markers, key=lambda m: m.get("time_s", 0.0))
     for j, m in enumerate(marks):
         d = m.get("distance_m")
         if d is None:
@@ -280,22 +294,25 @@ def _segments(g: ChainGroup, run, settings, folder):
         sel = (t >= t0) & (t < t1) & np.isfinite(ii) & np.isfinite(qq)
         n = int(sel.sum())
         if n < MIN_ROWS:
-            g.skipped.append(f"{Path(folder).name}: {d:g} m at {m['time_s']:g} s: "
+            g.skipped.append(f"{run_name}: {d:g} m at {m['time_s']:g} s: "
                              f"{max(t1 - t0, 0):.2f} s left after the {g.settling_s:.2f} s settling margin")
             continue
         i, q = ii[sel], qq[sel]
         zbar = complex(np.mean(i), np.mean(q))
         vec, scal = segment_amplitudes(i, q)
-        if vec > 0:
-            u = (-zbar.imag / vec, zbar.real / vec)
-        else:
-            u = (0.0, 1.0)
+        u = (-zbar.imag / vec, zbar.real / vec) if vec > 0 else (0.0, 1.0)
         perp = i * u[0] + q * u[1]
         n_mean, dof = effective_samples(n, dt, g.tau, g.sections)
         ss = float(np.sum((perp - perp.mean()) ** 2))
         var = ss / (n * (1.0 - 1.0 / n_mean)) if n_mean > 1 else float("nan")
-        g.segments.append(Segment(Path(folder).name, float(d), m.get("note", ""), t0, t1, n,
+        g.segments.append(Segment(run_name, float(d), m.get("note", ""), t0, t1, n,
                                   n_mean, dof, zbar, scal, var))
+
+
+def analyse_group(g: ChainGroup, snr_db: float, want_m: float | None = None) -> dict:
+    """Noise, fit, range (and advice) for one group's segments; the result dict."""
+    _analyse(g, snr_db, want_m)
+    return g.result
 
 
 def _analyse(g: ChainGroup, snr_db: float, want_m: float | None) -> None:
