@@ -259,9 +259,16 @@ class RunWriter:
     def _stop_on(self, e: BaseException, name: str = "") -> None:
         """A write failed: one line, files closed and readable, the rest discarded."""
         from livefilt.threads import one_line
-        t = self._wav.frames / self.rate_hz
         where = "" if getattr(e, "filename", None) or not name else f": {self.folder / name}"
-        self.failed = f"recording stopped after {t:.1f} s: {one_line(e)}{where}"
+        self._stopped_because(one_line(e) + where)
+
+    def _failed_in_thread(self, worker) -> None:
+        """Anything else ended the recorder thread: the same, and no more queueing."""
+        self._stopped_because(worker.error_line, closing=True)
+
+    def _stopped_because(self, why: str, closing: bool = False) -> None:
+        if self.failed is None:
+            self.failed = f"recording stopped after {self._wav.frames / self.rate_hz:.1f} s: {why}"
         self.counts["recording_error"] = self.failed
         self._close_files()
         try:
@@ -269,19 +276,7 @@ class RunWriter:
         except OSError:
             pass  # the previous run.toml stays (it is replaced atomically)
         with self._cv:
-            self._cv.notify_all()
-
-    def _failed_in_thread(self, worker) -> None:
-        if self.failed is None:
-            self.failed = f"recording stopped after {self._wav.frames / self.rate_hz:.1f} s: {worker.error_line}"
-        self.counts["recording_error"] = self.failed
-        self._close_files()
-        try:
-            self._write_meta()
-        except OSError:
-            pass
-        with self._cv:
-            self._closing = True
+            self._closing = self._closing or closing
             self._cv.notify_all()
 
     def _close_files(self) -> None:
