@@ -21,6 +21,7 @@ import tomllib
 from pathlib import Path
 
 from livefilt.errors import RecordingError, SettingError, SourceError
+from livefilt.threads import Worker
 from livefilt.acquire.source import Pacer, Source
 from livefilt.runs.wavio import WavReader
 
@@ -112,7 +113,7 @@ class FileSource(Source):
 
     def start(self, ring) -> None:
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-file", daemon=True)
+        self._thread = Worker(lambda: self._run(ring), "livefilt-file", on_error=lambda w: ring.close())
         self._thread.start()
 
     def _run(self, ring) -> None:

@@ -62,6 +62,7 @@ import threading
 import numpy as np
 
 from livefilt.errors import SettingError
+from livefilt.threads import Worker
 from livefilt.acquire.source import DeviceInfo, Pacer, Source
 
 __all__ = ["SimulatedSource", "Scene"]
@@ -375,8 +376,7 @@ class SimulatedSource(Source):
     # -- running -------------------------------------------------------
     def start(self, ring) -> None:
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-sim",
-                                        daemon=True)
+        self._thread = Worker(lambda: self._run(ring), "livefilt-sim", on_error=lambda w: ring.close())
         self._thread.start()
 
     def _run(self, ring) -> None:

@@ -500,6 +500,11 @@ def analyse(folders, snr_db: float = 10.0, want_m: float | None = None):
     if want_m is not None and not (math.isfinite(want_m) and want_m > 0):
         raise SettingError("--want-m", want_m, "must be a distance above 0 m")
     folders = [str(f) for f in folders]
+    reports = [f for f in folders if (Path(f) / "range.toml").is_file() and not (Path(f) / "run.toml").exists()]
+    if reports and len(reports) < len(folders):  # "livefilt range runs/*" after a first report
+        for f in reports:
+            print(f"livefilt: skipping {f}: a range report, not a run", file=sys.stderr)
+        folders = [f for f in folders if f not in reports]
     groups, loaded = _groups(folders)
     if not groups:
         raise LivefiltError(f"{folders[0]}: no lock-in chain in these runs: the range report "
@@ -536,7 +541,8 @@ def build_report(folders, snr_db: float = 10.0, want_m: float | None = None, out
     with progress(4, "range report", "step") as bar:
         groups, doc = analyse(folders, snr_db, want_m)
         bar.update(1)
-        out = Path(out) if out else Path(folders[0]).parent / f"range-{Path(folders[0]).name}"
+        first = Path(doc["report"]["runs"][0])
+        out = Path(out) if out else first.parent / f"range-{first.name}"
         rep = ReportFolder(out, "Detection range")
         rep.toml("range.toml", doc)
         rep.csv("points.csv", POINT_COLUMNS, _points_rows(groups))

@@ -30,7 +30,7 @@ import numpy as np
 from livefilt.stream.chain import Chain
 from livefilt.config import ChainSettings, Settings, parse_chain
 from livefilt.dsp.detect import ReferenceSpec
-from livefilt.errors import SettingError
+from livefilt.errors import SettingError, SourceError
 from livefilt.threads import Worker
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
 from livefilt.acquire.ring import Ring
@@ -297,6 +297,9 @@ class Engine:
                 if not self.step():
                     if self.ring.closed or (self._stop_at is not None and self.stats.index >= self._stop_at):
                         break
+            died = getattr(getattr(self.source, "_thread", None), "error_line", None)
+            if died and self.error is None:  # the source's worker failed and closed the ring
+                raise SourceError(f"{self.source.driver}: the source stopped: {died}")
         except BaseException as e:  # reported by the caller; the recording is closed below
             self.error = e
             log.debug("engine stopped on error", exc_info=True)
