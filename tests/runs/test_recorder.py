@@ -46,22 +46,26 @@ def _check_readable(folder):
 def test_sigkill_mid_run_leaves_readable_files(tmp_path):
     p = subprocess.Popen(CMD + ["run", "--duration", "60", "--out", str(tmp_path)], stdout=subprocess.PIPE,
                          stderr=subprocess.PIPE, stdin=subprocess.DEVNULL, text=True, env=_env())
-    t_seen = 0.0
+    t_seen, seen_at = 0.0, time.monotonic()
     deadline = time.monotonic() + 60
     try:
         for line in p.stdout:
             m = re.match(r"t=\s*([\d.]+) s", line)
             if m:
-                t_seen = float(m.group(1))
+                t_seen, seen_at = float(m.group(1)), time.monotonic()
                 if t_seen >= 3.0:
                     break
             assert time.monotonic() < deadline
+        time.sleep(0.6)  # kill between two header refreshes
     finally:
+        killed_at = time.monotonic()
         p.send_signal(signal.SIGKILL)
         p.wait(10)
+    # data time acquired at the kill: the read-out's last time plus the wall time since (paced source)
+    t_kill = t_seen + (killed_at - seen_at)
     (folder,) = tmp_path.iterdir()
     wav_s, rows, meta = _check_readable(folder)
-    assert wav_s >= t_seen - 1.0  # at most 1 s missing: the header is refreshed every second
+    assert wav_s >= t_kill - 1.0 - 0.1  # at most 1 s missing (header refreshed every second; 0.1 s pacing slack)
     assert meta["run"]["rate_hz"] == 48000 and "config" in meta
     run = read_run(folder)
     assert len(run.chain_rows("A")["amplitude"]) >= (t_seen - 1.0) / 0.05 - 1
