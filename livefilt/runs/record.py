@@ -285,6 +285,7 @@ class RunWriter:
                 close()
             except (OSError, ValueError):
                 pass
+        _trim_wav(self._wav.path, self._wav.bytes_written)
 
     def _finish(self) -> None:
         self.counts.update(recorder_dropped_frames=self.dropped_frames,
@@ -325,6 +326,20 @@ class RunWriter:
             except OSError:
                 pass
             raise
+
+
+def _trim_wav(path: Path, size: int) -> None:
+    """Cut a partly written last block (a write that failed half way) off raw.wav
+    so the file ends where its header's data chunk ends; fix the RIFF size."""
+    try:
+        if path.stat().st_size <= size or size > 0xFFFFFFFF:
+            return
+        with open(path, "r+b") as f:
+            f.truncate(size)
+            f.seek(4)
+            f.write((size - 8).to_bytes(4, "little"))
+    except OSError:
+        pass  # the stale tail is still read as data by tolerant readers
 
 
 def make_marker(time_s: float, distance_m: float | None, note: str = "") -> dict:
