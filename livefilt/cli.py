@@ -159,6 +159,10 @@ def cmd_run(args) -> int:
             bar.close()
     if engine.error is not None:  # printed in one line by main()
         raise engine.error
+    left = engine.pending_markers()
+    if getattr(args, "marks", None) and left:
+        print(f"livefilt: {len(left)} marker(s) of {args.marks} fell after the run's end "
+              f"(from {left[0]['time_s']:g} s): not recorded", file=sys.stderr)
     failed = engine.recording_failed
     if failed:
         if failed != failed_shown:

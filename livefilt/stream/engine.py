@@ -201,6 +201,10 @@ class Engine:
         base = [] if replace else self._schedule
         self._schedule = sorted(base + keep, key=lambda m: m["time_s"])
 
+    def pending_markers(self) -> list[dict]:
+        """Scheduled markers whose time has not been reached (yet)."""
+        return list(self._schedule)
+
     def add_marker(self, distance_m: float | None, note: str = "", time_s: float | None = None) -> dict:
         """Mark the current acquisition time (or ``time_s``) with the target
         distance (None: the target is moving) and a note."""
