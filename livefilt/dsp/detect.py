@@ -553,8 +553,8 @@ class LockIn(_Detector):
 
     _channels = 2
     # I, Q, (I + Q)/sqrt 2 (for the I-Q covariance), row time t, unwrapped
-    # phase, (t + phase)/sqrt 2 (for the slope of the phase)
-    _stat_channels = 6
+    # phase, (t + phase)/sqrt 2 (for the slope of the phase), its row-to-row increment
+    _stat_channels = 7
 
     def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
                  output_every: int, exact_path: bool = False):
@@ -685,7 +685,8 @@ class LockIn(_Detector):
         prev = np.empty_like(z)
         prev[0] = self._last_z
         prev[1:] = z[:-1]
-        phi = self._phi + np.cumsum(np.angle(z * np.conj(prev)))
+        inc = np.angle(z * np.conj(prev))
+        phi = self._phi + np.cumsum(inc)
         self._last_z, self._phi = complex(z[-1]), float(phi[-1])
         for name in ("noise", "noise_u", "vector_amplitude", "offset_hz", "offset_u_hz"):
             rows[name] = np.nan
@@ -701,7 +702,7 @@ class LockIn(_Detector):
             t = (index[k:] // self.output_every).astype(np.float64)
             p = phi[k:]
             mean, var, cnt = self.stats.update(np.stack(
-                (i_s, q_s, (i_s + q_s) * _SQRT_HALF, t, p, (t + p) * _SQRT_HALF), axis=1))
+                (i_s, q_s, (i_s + q_s) * _SQRT_HALF, t, p, (t + p) * _SQRT_HALF, inc[k:]), axis=1))
             mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
             cov = var[:, 2] - 0.5 * (vi + vq)
             m2 = mi * mi + mq * mq
@@ -726,8 +727,17 @@ class LockIn(_Detector):
                 resid = np.maximum(vp - cov_tp * slope, 0.0)
                 per_row = self.fs / self.output_every / (2.0 * math.pi)
                 rows["offset_hz"][k:] = slope * per_row
-                rows["offset_u_hz"][k:] = np.sqrt(resid * 12.0 / self.tables.n_mean[cnt]) \
-                    / cnt * per_row
+                # ... or, when larger, that of a random-walking phase (noise
+                # alone: the unwrapped phase wanders), 6/5 s_inc^2 / m per row^2
+                # with s_inc^2 the variance of the row-to-row increments
+                u_line = np.sqrt(resid * 12.0 / self.tables.n_mean[cnt]) / cnt
+                u_walk = np.sqrt(1.2 * var[:, 6] / cnt)
+                # fewer than 10 independent rows, or a phase scattered by more
+                # than 0.5 rad RMS about the line (the signal under about 6 dB
+                # SNR: noise's own phase wanders and wraps), judge nothing:
+                # NaN, no drift call
+                ok = (self.tables.n_mean[cnt] >= 10) & (resid < 0.25)
+                rows["offset_u_hz"][k:] = np.where(ok, np.fmax(u_line, u_walk) * per_row, np.nan)
         self._fill_common(rows)
         rows["ref_hz"] = ref_hz
         lock = np.ones(m, dtype=bool) if locked is None else np.asarray(locked, dtype=bool).copy()

@@ -18,6 +18,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtGui, QtWidgets
 
+from livefilt.dsp.detect import LOCK_REASONS
 from livefilt.units import level_db, level_unit, si
 from livefilt.window import palette
 from livefilt.window.strip import fit_range
@@ -191,6 +192,12 @@ class BigReadout(QtWidgets.QFrame):
         self.diff.setStyleSheet(f"color: {palette.FOREGROUND};")
         _fix_size(self.diff, "A − B:  +888.88 dB")
         grid.addWidget(self.diff, 1 + len(histories), 0, 1, 4)
+        # the reference as measured from the lock-in's phase, and why it is not locked
+        self.reference = QtWidgets.QLabel("")
+        self.reference.setStyleSheet(f"color: {palette.FOREGROUND};")
+        _fix_size(self.reference, "A: reference 88888.88 Hz, +888.88 Hz from setting ±88.88 Hz"
+                  "   not locked: phase drifts faster than the output low-pass follows (reference off)")
+        grid.addWidget(self.reference, 2 + len(histories), 0, 1, 4)
         names = list(histories)
         self._pair = names[:2] if len(names) >= 2 else None
 
@@ -208,9 +215,27 @@ class BigReadout(QtWidgets.QFrame):
             ln.setText(si(n, self.units) + (f" ±{100 * u:.0f} %" if math.isfinite(u) else ""))
             ls.setText("—" if not math.isfinite(s) else f"{s:5.1f}"
                        + (f" ±{su:.1f}" if math.isfinite(su) else "") + " dB")
+        self.reference.setText(reference_line(self.histories))
         if self._pair and all(amps.get(n, 0) > 0 for n in self._pair):
             a, b = self._pair
             self.diff.setText(f"{a} − {b}:  {20 * math.log10(amps[a] / amps[b]):+.2f} dB")
+
+
+def reference_line(histories: dict[str, RowHistory]) -> str:
+    """The first chain's measured reference and, if so, why it is not locked."""
+    for name, h in histories.items():
+        r = h.latest
+        if r is None:
+            continue
+        off, ref, u = float(r["offset_hz"]), float(r["ref_hz"]), float(r["offset_u_hz"])
+        text = ""
+        if math.isfinite(off) and math.isfinite(ref):
+            text = f"{name}: reference {ref + off:.2f} Hz ({off:+.2f} Hz"
+            text += f" ±{u:.2f} Hz)" if math.isfinite(u) else ")"
+        if not r["locked"]:
+            text += f"   not locked: {LOCK_REASONS.get(int(r['lock_reason']), '')}"
+        return text
+    return ""
 
 
 def _fix_size(label: QtWidgets.QLabel, sample: str) -> None:

@@ -55,14 +55,21 @@ def test_reference_off_by_a_tenth_of_a_percent_reads_its_offset_and_not_locked()
     assert np.median(late["ref_hz"]) == pytest.approx(1371.37, abs=0.01)
 
 
-def test_reference_on_frequency_stays_locked_with_a_small_offset():
-    n = int(10 * FS)
-    x = 0.01 * np.cos(2 * np.pi * 1370.0 * np.arange(n) / FS + 0.4) \
+@pytest.mark.parametrize("amp,tau", [(0.01, 0.1), (0.0, 0.1), (0.0, 0.01), (0.0005, 0.01)])
+def test_reference_on_frequency_stays_locked(amp, tau):
+    # on frequency, from a clear signal down to noise alone (whose unwrapped
+    # phase wanders: the offset's uncertainty then follows a random walk's)
+    n = int(30 * FS)
+    x = amp * np.cos(2 * np.pi * 1370.0 * np.arange(n) / FS + 0.4) \
         + np.random.default_rng(5).normal(0, 0.05, n)
-    rows = feed(lockin({"frequency_hz": 1370.0}), x)
+    rows = feed(lockin({"frequency_hz": 1370.0}, tau=tau), x)
     steady = rows[rows["index"] > 3 * FS]
     assert steady["locked"].all()
-    assert np.all(np.abs(steady["offset_hz"]) < 4 * steady["offset_u_hz"] + 1e-3)
+    if amp >= 0.01:  # (a weak signal's scattered phase judges nothing: NaN)
+        u = steady["offset_u_hz"]
+        assert np.isfinite(u[-1])
+        ok = np.isfinite(u)
+        assert np.all(np.abs(steady["offset_hz"][ok]) < 4 * u[ok] + 1e-3)
 
 
 def _drifting(track, seconds, **drift):
@@ -96,9 +103,9 @@ def test_tracking_reference_reads_a_drifting_source_right(drift):
     assert rows["locked"][late].all()
     np.testing.assert_allclose(rows["ref_hz"][late], f[late], atol=0.05)
     fixed, t, f, expected = _drifting(False, 10.0, **drift)
+    # (7 to 14 Hz off, far outside its 0.11 Hz: the output is noise, whose
+    # scattered phase allows no drift call; the static 0.1 % case above is seen)
     assert np.all(fixed["amplitude"][late] < 0.1 * expected[late])
-    if "led_ramp_hz_per_s" in drift:  # within the low-pass the offset is seen
-        assert not fixed["locked"][late].any()
 
 
 def test_tracking_compiled_equals_straightforward_and_ignores_block_split():
