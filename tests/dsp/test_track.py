@@ -53,6 +53,10 @@ def test_reference_off_by_a_tenth_of_a_percent_reads_its_offset_and_not_locked()
     assert late["locked"].all()
     assert np.median(late["amplitude"]) == pytest.approx(0.01 / math.sqrt(2), rel=0.02)
     assert np.median(late["ref_hz"]) == pytest.approx(1371.37, abs=0.01)
+    # noise along the signal (the loop follows the quadrature noise): e * sqrt(ENBW)
+    # (row 3a) within three of its stated uncertainties (one window's worth here)
+    e = 0.05 * math.sqrt(2 / FS) * math.sqrt(lockin({"frequency_hz": 1370.0}).enbw_hz)
+    assert np.median(late["noise"]) == pytest.approx(e, rel=3 * late["noise_u"][-1])
 
 
 @pytest.mark.parametrize("amp,tau", [(0.01, 0.1), (0.0, 0.1), (0.0, 0.01), (0.0005, 0.01)])
