@@ -344,15 +344,28 @@ def _cluster(jobs, address: str, on_done, on_fail, timeout_s: float = 20.0) -> N
 
 # -- the sweep --------------------------------------------------------------------
 
-def _analyse(runs_rows, markers, chain: ChainSettings, fs: float, snr_db: float) -> dict:
+def _trial_group(cs: ChainSettings, fs: float, ref_hz: float | None, every: int):
+    """The range report's chain group for a trial: its ENBW and settling margin."""
+    from livefilt.analysis.range_report import group_for_chain
+    from livefilt.dsp.design import chain_sos
+    from livefilt.dsp.detect import ReferenceSpec, make_detector
+    ref = ReferenceSpec.from_mapping({"frequency_hz": ref_hz or 1000.0}, fs, 2)
+    det = make_detector(cs.detector, ref, fs, every)
+    return group_for_chain("trial", cs.name, cs.to_mapping(), fs, det, chain_sos(cs.stages, fs), ref_hz)
+
+
+def _analyse(g, runs_rows, runs: Sequence[dict], fs: float, snr_db: float) -> dict:
     """Range analysis of one trial over every run (``livefilt range``'s own code)."""
-    from livefilt.analysis import range_report
-    return range_report.analyse_rows(runs_rows, markers, chain, fs, snr_db)
-
-
-def _settling(chain: ChainSettings, fs: float) -> float:
-    from livefilt.analysis import range_report
-    return float(range_report.chain_settling_s(chain, fs))
+    from livefilt.analysis.range_report import add_segments, analyse_group
+    for rows, run in zip(runs_rows, runs):
+        t = rows["index"] / fs
+        end = float(t[-1]) + run["dt"] if len(t) else 0.0
+        add_segments(g, t, rows["in_phase"], rows["quadrature"], run["markers"], run["dt"], end,
+                     run["name"])
+    res = analyse_group(g, snr_db)
+    if "range_m" not in res:
+        raise LivefiltError(res.get("problem", "no range"))
+    return res
 
 
 def sweep(runs: Sequence[str | os.PathLike], grid_path, *, chain: str | None = None,
@@ -360,22 +373,24 @@ def sweep(runs: Sequence[str | os.PathLike], grid_path, *, chain: str | None = N
           cluster: str | None = None, out: str | os.PathLike | None = None,
           say=print) -> dict:
     """Plan, run and analyse a sweep; returns the table (and writes it when ``out``)."""
+    from livefilt.analysis.range_report import _load, _reference
     folders = [Path(r) for r in runs]
-    metas = []
-    for f in folders:
-        run = read_run(f, raw=False)
-        metas.append(run)
-    base_doc = metas[0].config
-    try:
-        settings: Settings = parse_config(base_doc, str(folders[0]))
-    except SettingError as e:
-        raise LivefiltError(f"{folders[0]}: its settings no longer load: {e}") from None
-    rate = float(metas[0].rate_hz or settings.source.rate_hz)
-    for f, m in zip(folders[1:], metas[1:]):
-        r = float(m.rate_hz or 0)
+    loaded = [_load(str(f)) for f in folders]  # one line naming the run when one does not load
+    settings: Settings = loaded[0][1]
+    rate = loaded[0][2]
+    for f, (_, _, r, _) in zip(folders[1:], loaded[1:]):
         if abs(r - rate) > 1e-9:
             raise LivefiltError(f"{f}: recorded at {r:g} Hz, {folders[0]} at {rate:g} Hz: "
                                 "tune runs of one rate together")
+    runs_info = []
+    for f, (run, st, r, ch) in zip(folders, loaded):
+        ref = _reference(st, run, r, ch)
+        runs_info.append({"name": f.name, "markers": run.markers, "dt": st.output.interval_s,
+                          "ref_hz": ref.frequency_hz if ref is not None else None,
+                          "every": max(1, int(round(st.output.interval_s * r)))})
+    if not any(m.get("distance_m") is not None for i in runs_info for m in i["markers"]):
+        raise LivefiltError(f"{folders[0]}: no distance markers in these runs: tune needs runs "
+                            "with markers (type distances while recording, or replay with --marks)")
     names = [c.name for c in settings.chains]
     if chain is None:
         base = settings.chains[0]
@@ -420,11 +435,11 @@ def sweep(runs: Sequence[str | os.PathLike], grid_path, *, chain: str | None = N
                 _local(jobs, workers or os.cpu_count() or 1, done, fail)
     finally:
         bar.close()
-    markers = [m.markers for m in metas]
     table = []
     for t in grid.trials:
         cs = parse_chain(t.chain, rate, 0, 64)
-        row = {"trial": t.index, "values": t.values, "settling_s": _settling(cs, rate)}
+        g = _trial_group(cs, rate, runs_info[0]["ref_hz"], runs_info[0]["every"])
+        row = {"trial": t.index, "values": t.values, "settling_s": float(g.settling_s)}
         ks = [keys[(r, t.index)] for r in range(len(folders))]
         bad = [failed[k] for k in ks if k in failed]
         if bad:
@@ -433,7 +448,7 @@ def sweep(runs: Sequence[str | os.PathLike], grid_path, *, chain: str | None = N
         else:
             rows = [store[k] if k in store else np.load(cache / f"{k}.npy") for k in ks]
             try:
-                res = _analyse(rows, markers, cs, rate, snr_db)
+                res = _analyse(g, rows, runs_info, rate, snr_db)
                 row.update(status="ok", **{k: float(res[k]) for k in
                                            ("range_m", "range_low_m", "range_high_m", "exponent")})
             except LivefiltError as e:
@@ -521,6 +536,10 @@ def _write(out: Path, result: dict, say) -> None:
         if result["max_settling_s"] is not None:
             ax.axvline(result["max_settling_s"], color="#a33b00", ls="--", lw=1, label="lag budget")
         ax.set_xscale("log")
+        from matplotlib.ticker import FuncFormatter
+        plain = FuncFormatter(lambda v, _: f"{v:g}")
+        ax.xaxis.set_major_formatter(plain)
+        ax.xaxis.set_minor_formatter(FuncFormatter(lambda v, _: f"{v:g}" if f"{v:g}"[0] in "25" else ""))
     ax.set_xlabel("settling time, 99 % (s)")
     ax.set_ylabel("detection range (m)")
     ax.grid(True, which="both", alpha=0.3)
