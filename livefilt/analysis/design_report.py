@@ -177,7 +177,18 @@ def to_document(d: Design) -> dict:
             t["snr_db_threshold"] = ds.snr_db
         chains[c.name] = t
     doc["chains"] = chains
-    return doc
+    return _plain(doc)
+
+
+def _plain(x):
+    """numpy scalars to Python numbers, for the TOML writer."""
+    if isinstance(x, dict):
+        return {k: _plain(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_plain(v) for v in x]
+    if isinstance(x, np.generic):
+        return x.item()
+    return x
 
 
 def print_table(d: Design, out=sys.stdout) -> None:
