@@ -131,7 +131,7 @@ def design(settings: Settings, simulate: bool = True) -> Design:
         warnings.append(f"the front end attenuates the reference's image at {si(image_hz, 'Hz')} by only "
                         f"{-alias_db:.1f} dB: noise there folds onto the reference")
     for c in chains:
-        if not (c.settling_s == c.settling_s):  # NaN
+        if c.step is not None and not (c.settling_s == c.settling_s):  # simulated, NaN
             warnings.append(f"chain {c.name}: the detector output never stays within 1 %: it ripples by "
                             f"{c.ripple_pct:.2f} % (twice the reference leaks through); use a steeper "
                             "slope or a longer time constant")
@@ -243,7 +243,8 @@ def write_report(d: Design, folder) -> "Path":
              f"reference {si(d.ref_hz, 'Hz')}, mains {d.mains_hz:g} Hz.",
              "The front end is the analog circuit on the board; it is never run on the samples, but it "
              "enters every response and prediction here. Attenuations are relative to the reference; "
-             f"{predict.FLOOR_DB:g} dB means blocked entirely (a zero of the response)."]
+             f"{predict.FLOOR_DB:g} dB (shown as \"blocked\") means a zero of the response or deeper "
+             "than double-precision arithmetic can resolve."]
     body = rep.paragraphs(*intro)
     if d.warnings:
         body += "".join(f'<p class="warn">{_esc(w)}</p>' for w in d.warnings)

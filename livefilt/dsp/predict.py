@@ -37,8 +37,9 @@ __all__ = ["DesignSpec", "interferer_lines", "DetectorFigures", "detector_figure
            "chain_on_paper", "step_response", "fold_hz", "alias_lines",
            "predicted_snr_db", "range_at_m", "to_db", "FLOOR_DB", "SETTLE_FRACTION"]
 
-#: Attenuations below this are written as this (a zero of the response: blocked).
-FLOOR_DB = -300.0
+#: Attenuations below this are written as this: blocked (a zero of the response, or
+#: deeper than double-precision sections can tell apart from one).
+FLOOR_DB = -200.0
 #: "Settled": within 1 % of the final amplitude and staying there (99 % settling).
 SETTLE_FRACTION = 0.99
 #: The detection band's edge: where the detector's own low-pass rejects 40 dB.
