@@ -98,7 +98,7 @@ def parts_rows(frontend: front.Frontend | None) -> list[dict]:
                "response": st.response, "r_tolerance_pct": rt, "c_tolerance_pct": ct,
                "picked": st.picked}
         if st.picked:
-            row.update(asked_hz=st.cutoff_hz, series=st.series, c_series=st.c_series)
+            row.update(asked_hz=st.asked_hz, series=st.series, c_series=st.c_series)
         rows.append(row)
     return rows
 

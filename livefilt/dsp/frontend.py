@@ -42,14 +42,14 @@ every stage, ``name`` optional.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from typing import Any, Mapping, Sequence
 
 import numpy as np
 from scipy import signal
 
 from livefilt.dsp import parts
-from livefilt.dsp.design import DESIGNS, analog_cutoff_hz, parse_si, rc_analog
+from livefilt.dsp.design import DESIGNS, StageSpec, analog_cutoff_hz, parse_si, rc_analog
 from livefilt.errors import SettingError
 
 __all__ = ["FrontStage", "Frontend", "response", "group_delay", "stage_zpk",
@@ -68,9 +68,6 @@ _KEYS = {
     "highpass": ("cutoff_hz",) + _ACTIVE,
     "bandpass": ("band_hz",) + _ACTIVE,
 }
-_DEFAULTS = {"gain_db": 0.0, "sections": 1, "buffered": True, "response": "lowpass",
-             "tolerance_pct": parts.DEFAULT_TOLERANCE_PCT}
-_NO_DEFAULT = object()
 _MAX_HZ = 1e9
 _MAX_ORDER = 8
 _MAX_SECTIONS = 8
@@ -78,30 +75,31 @@ _MAX_SECTIONS = 8
 
 @dataclass(frozen=True)
 class FrontStage:
-    """One analog stage, validated.  Frequencies Hz, ohm, farad; unused keys None."""
+    """One analog stage, validated.
 
-    type: str
+    ``spec`` holds the stage's parameters in the digital stages' form
+    (:class:`~livefilt.dsp.design.StageSpec`: type, design, order, cutoff_hz or
+    band_hz, ripple_db, stop_db, r_ohm, c_farad, sections, buffered, response,
+    gain_db; Hz, ohm, farad), readable as attributes of the stage itself.  An rc
+    stage whose parts were picked keeps the asked ``asked_hz`` and its series.
+    """
+
     name: str
-    gain_db: float = 0.0
-    design: str | None = None
-    order: int | None = None
-    cutoff_hz: float | None = None
-    band_hz: tuple[float, float] | None = None
-    ripple_db: float | None = None
-    stop_db: float | None = None
-    r_ohm: float | None = None
-    c_farad: float | None = None
-    sections: int | None = None
-    buffered: bool | None = None
-    response: str | None = None
+    spec: StageSpec
     series: str | None = None
     c_series: str | None = None
     tolerance_pct: tuple[float, float] | None = None
+    asked_hz: float | None = None
+
+    def __getattr__(self, key: str):
+        if key == "spec":  # not set yet (copying): no recursion
+            raise AttributeError(key)
+        return getattr(self.spec, key)
 
     @property
     def picked(self) -> bool:
         """True when the parts were picked from a series for ``cutoff_hz``."""
-        return self.type == "rc" and self.series is not None
+        return self.series is not None
 
     @property
     def minus3db_hz(self) -> float | None:
@@ -171,19 +169,21 @@ class FrontStage:
                 v["band_hz"] = (lo, hi)
             else:
                 v["cutoff_hz"] = _freq(table.get("cutoff_hz"), "cutoff_hz")
-        return cls(**v)
+        own = {k: v.pop(k) for k in ("name", "series", "c_series", "tolerance_pct") if k in v}
+        if own.get("series"):
+            own["asked_hz"] = v.pop("cutoff_hz")
+        return cls(spec=StageSpec(**v), **own)
 
     def to_mapping(self) -> dict[str, Any]:
         """The table :meth:`from_mapping` reads back to an equal stage (picked parts
         are written as their ``cutoff_hz`` and ``series``, as given)."""
-        out: dict[str, Any] = {}
-        for f in fields(self):
-            value = getattr(self, f.name)
-            if value is None or _DEFAULTS.get(f.name, _NO_DEFAULT) == value:
-                continue
-            if self.picked and f.name in ("r_ohm", "c_farad"):
-                continue
-            out[f.name] = list(value) if isinstance(value, tuple) else value
+        out: dict[str, Any] = {"type": self.type, "name": self.name}
+        out.update(self.spec.to_mapping())
+        if self.picked:
+            del out["r_ohm"], out["c_farad"]
+            out.update(cutoff_hz=self.asked_hz, series=self.series, c_series=self.c_series)
+        if self.tolerance_pct is not None and self.tolerance_pct != parts.DEFAULT_TOLERANCE_PCT:
+            out["tolerance_pct"] = list(self.tolerance_pct)
         return out
 
     def describe(self) -> str:
