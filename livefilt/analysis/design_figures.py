@@ -27,18 +27,24 @@ def frequency_grid(d, upto: float | None = None, n: int = 1500) -> np.ndarray:
     return np.unique(np.concatenate([f, [d.ref_hz] + [x for _, x in d.lines if lo <= x <= hi]]))
 
 
-def draw_all(d, rep) -> dict[str, list[str]]:
-    """Draw every figure into ``rep``; returns the names by page section."""
+def draw_all(d, rep, tick=None) -> dict[str, list[str]]:
+    """Draw every figure into ``rep``; returns the names by page section;
+    ``tick()`` after each figure."""
     out: dict[str, list[str]] = {"front": [], "chains": [], "snr": []}
+    todo = []
     if d.settings.frontend is not None:
-        out["front"].append(_front_figure(d, rep))
+        todo.append(("front", lambda: _front_figure(d, rep)))
     for c in d.chains:
-        out["chains"].append(_chain_figure(d, c, rep))
-    out["chains"].append(_delay_figure(d, rep))
+        todo.append(("chains", lambda c=c: _chain_figure(d, c, rep)))
+    todo.append(("chains", lambda: _delay_figure(d, rep)))
     if any(c.step is not None for c in d.chains):
-        out["chains"].append(_step_figure(d, rep))
+        todo.append(("chains", lambda: _step_figure(d, rep)))
     if d.settings.design.signal_at is not None:
-        out["snr"].append(_snr_figure(d, rep))
+        todo.append(("snr", lambda: _snr_figure(d, rep)))
+    for where, draw in todo:
+        out[where].append(draw())
+        if tick:
+            tick()
     return out
 
 
@@ -48,22 +54,21 @@ def _db(h) -> np.ndarray:
 
 
 def _marks(ax, d, upto: float, labels: bool = True) -> None:
-    """Reference, interferers, Nyquist and the reference's images."""
-    ax.axvline(d.ref_hz, color="#1b7f3b", lw=1.4, label=f"reference {si(d.ref_hz, 'Hz')}" if labels else None)
-    first = True
-    for lab, f in d.lines:
-        if 0 < f <= upto:
-            ax.axvline(f, color="#8a8f99", lw=0.7, ls=":",
-                       label="interferers (DC, mains x1..x10, listed)" if labels and first else None)
-            first = False
-    ax.axvline(d.nyquist_hz, color="#333333", lw=1.0, ls="--", label="Nyquist" if labels else None)
-    first = True
-    for k in (1, 2, 3):
-        for im in (k * d.fs - d.ref_hz, k * d.fs + d.ref_hz):
-            if im <= upto:
-                ax.axvline(im, color="#c0392b", lw=0.9, ls="-.",
-                           label="images of the reference (k·rate ± ref)" if labels and first else None)
-                first = False
+    """Reference, interferers, Nyquist and the reference's images (one line
+    collection per kind: cheap to lay out)."""
+    tr = ax.get_xaxis_transform()
+
+    def group(xs, label, **kw):
+        xs = [x for x in xs if 0 < x <= upto]
+        if xs:
+            ax.vlines(xs, 0, 1, transform=tr, label=label if labels else None, **kw)
+
+    group([d.ref_hz], f"reference {si(d.ref_hz, 'Hz')}", color="#1b7f3b", lw=1.4)
+    group([f for _, f in d.lines], "interferers (DC, mains x1..x10, listed)",
+          color="#8a8f99", lw=0.7, linestyles=":")
+    group([d.nyquist_hz], "Nyquist", color="#333333", lw=1.0, linestyles="--")
+    group([k * d.fs + s * d.ref_hz for k in (1, 2, 3) for s in (-1, 1)],
+          "images of the reference (k·rate ± ref)", color="#c0392b", lw=0.9, linestyles="-.")
 
 
 def _front_figure(d, rep) -> str:
@@ -100,11 +105,12 @@ def _chain_figure(d, c, rep) -> str:
     if d.settings.frontend is not None:
         am.semilogx(f, _db(hf), lw=1.0, color="#7b5ea7", label="front end")
         ph.semilogx(f, np.degrees(np.unwrap(np.angle(hf))), lw=1.0, color="#7b5ea7")
-    am.semilogx(f, _db(hd), lw=1.0, color="#d08a1e", label="digital stages")
-    ph.semilogx(f, np.degrees(np.unwrap(np.angle(hd))), lw=1.0, color="#d08a1e")
     both = hf * hd
-    am.semilogx(f, _db(both), lw=2.0, color="black", label="both")
-    ph.semilogx(f, np.degrees(np.unwrap(np.angle(both))), lw=1.6, color="black")
+    am.semilogx(f, _db(both), lw=2.6, color="black", label="both")
+    ph.semilogx(f, np.degrees(np.unwrap(np.angle(both))), lw=2.2, color="black")
+    # drawn on top of "both" so it shows where the front end is flat
+    am.semilogx(f, _db(hd), lw=1.0, color="#d08a1e", ls="--", label="digital stages")
+    ph.semilogx(f, np.degrees(np.unwrap(np.angle(hd))), lw=1.0, color="#d08a1e", ls="--")
     _marks(am, d, d.nyquist_hz)
     _marks(ph, d, d.nyquist_hz, labels=False)
     top = max(5, float(np.max(_db(both))) + 5, float(np.max(_db(hd))) + 5)
@@ -112,7 +118,8 @@ def _chain_figure(d, c, rep) -> str:
     am.set_ylabel("gain (dB)")
     ph.set_ylabel("phase (degrees)")
     ph.set_xlabel("frequency (Hz)")
-    am.set_title(f"Chain {c.name}: {c.gain_db:+.1f} dB at the reference, group delay "
+    gain = 0.0 if abs(c.gain_db) < 0.05 else c.gain_db
+    am.set_title(f"Chain {c.name}: {gain:+.1f} dB at the reference, group delay "
                  f"{si(c.group_delay_s, 's', 3)}")
     am.legend(fontsize=7, loc="lower left", ncol=2)
     am.grid(True, which="both", alpha=0.3)

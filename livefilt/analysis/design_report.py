@@ -103,14 +103,18 @@ def parts_rows(frontend: front.Frontend | None) -> list[dict]:
     return rows
 
 
-def design(settings: Settings, simulate: bool = True) -> Design:
-    """All figures of the design report for ``settings`` (no files)."""
+def design(settings: Settings, simulate: bool = True, tick=None) -> Design:
+    """All figures of the design report for ``settings`` (no files); ``tick()`` is
+    called after each chain (progress)."""
     fs = settings.source.rate_hz
     ref = reference_hz(settings)
     fe = settings.frontend
     lines = predict.interferer_lines(settings.mains_hz, settings.design.interferers_hz)
-    chains = [predict.chain_on_paper(c.name, c.stages, c.detector, fe, fs, ref, lines, simulate)
-              for c in settings.chains]
+    chains = []
+    for c in settings.chains:
+        chains.append(predict.chain_on_paper(c.name, c.stages, c.detector, fe, fs, ref, lines, simulate))
+        if tick:
+            tick()
     warnings = []
     alias_db = None
     image_hz = fs - ref
@@ -231,14 +235,15 @@ def print_table(d: Design, out=sys.stdout) -> None:
         p(f"warning: {w}")
 
 
-def write_report(d: Design, folder) -> "Path":
-    """Write design.toml, the PNG figures and design.html into ``folder``."""
+def write_report(d: Design, folder, tick=None) -> "Path":
+    """Write design.toml, the PNG figures and design.html into ``folder``;
+    ``tick()`` after each figure (progress)."""
     from livefilt.analysis.report import ReportFolder
 
     rep = ReportFolder(folder, "Design on paper")
     rep.toml("design.toml", to_document(d))
     from livefilt.analysis import design_figures as figs
-    written = figs.draw_all(d, rep)
+    written = figs.draw_all(d, rep, tick)
     intro = [f"Config {d.settings.origin}: sampled at {si(d.fs, 'Hz')} (Nyquist {si(d.nyquist_hz, 'Hz')}), "
              f"reference {si(d.ref_hz, 'Hz')}, mains {d.mains_hz:g} Hz.",
              "The front end is the analog circuit on the board; it is never run on the samples, but it "
@@ -266,10 +271,16 @@ def write_report(d: Design, folder) -> "Path":
 
 
 def main(args) -> int:
+    from livefilt.progress import progress
+
     settings = load_config(args.config) if getattr(args, "config", None) else demo_config()
-    d = design(settings)
+    # chains simulated, then the figures: front end, one per chain, delay, step, SNR
+    steps = (2 * len(settings.chains) + 2 + (settings.frontend is not None)
+             + (settings.design.signal_at is not None))
+    with progress(total=steps, desc="design", unit="step") as bar:
+        d = design(settings, tick=lambda: bar.update(1))
+        folder = write_report(d, args.out or "design-report", tick=lambda: bar.update(1))
     print_table(d)
-    folder = write_report(d, args.out or "design-report")
     print(f"wrote {folder / 'design.html'}, design.toml and figures", file=sys.stderr)
     return 0
 
