@@ -273,13 +273,17 @@ def write_report(d: Design, folder, tick=None) -> "Path":
 def main(args) -> int:
     from livefilt.progress import progress
 
+    from livefilt.analysis.report import ReportFolder
+
     settings = load_config(args.config) if getattr(args, "config", None) else demo_config()
+    out = args.out or "design-report"
+    ReportFolder(out, "Design on paper")  # a folder we cannot write: say so before the work
     # chains simulated, then the figures: front end, one per chain, delay, step, SNR
     steps = (2 * len(settings.chains) + 2 + (settings.frontend is not None)
              + (settings.design.signal_at is not None))
     with progress(total=steps, desc="design", unit="step") as bar:
         d = design(settings, tick=lambda: bar.update(1))
-        folder = write_report(d, args.out or "design-report", tick=lambda: bar.update(1))
+        folder = write_report(d, out, tick=lambda: bar.update(1))
     print_table(d)
     print(f"wrote {folder / 'design.html'}, design.toml and figures", file=sys.stderr)
     return 0

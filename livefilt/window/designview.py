@@ -10,6 +10,8 @@ chain's ENBW and lag.  Every number comes from
 
 from __future__ import annotations
 
+import logging
+
 import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
@@ -22,6 +24,8 @@ from livefilt.units import si
 from livefilt.window import palette
 
 __all__ = ["DesignView"]
+
+log = logging.getLogger(__name__)
 
 _FLOOR_DB = -160.0
 
@@ -74,9 +78,11 @@ class DesignView(QtWidgets.QWidget):
         try:
             self.design = design(settings, simulate=False)
         except LivefiltError as e:  # one line for the user, never a traceback
-            self.design = None
-            self.summary.setText(f"No design view for these settings: {e}")
-            self.warnings.setText("")
+            self._no_design(str(e))
+            return
+        except Exception as e:  # noqa: BLE001 (a slot must not raise into Qt)
+            log.debug("design view failed", exc_info=True)
+            self._no_design(f"{type(e).__name__}: {e}")
             return
         d = self.design
         self.summary.setText(f"Sampled at {si(d.fs, 'Hz')} (Nyquist {si(d.nyquist_hz, 'Hz')}), "
@@ -88,6 +94,15 @@ class DesignView(QtWidgets.QWidget):
         self._fill_chains(d)
         self._fill_lines(d)
         self._fill_parts(d)
+
+    def _no_design(self, why: str) -> None:
+        self.design = None
+        self.summary.setText(f"No design view for these settings: {why}")
+        self.warnings.setText("")
+        for p in (self.gain_plot, self.phase_plot):
+            p.clear()
+        for t in (self.chain_table, self.lines_table, self.parts_table):
+            t.setRowCount(0)
 
     # -- drawing ----------------------------------------------------------------
     def _draw_curves(self, d) -> None:
