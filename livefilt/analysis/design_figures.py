@@ -21,10 +21,10 @@ _FLOOR_PLOT_DB = -160.0
 
 def frequency_grid(d, upto: float | None = None, n: int = 1500) -> np.ndarray:
     """Log-spaced frequencies from below the lowest line of interest to ``upto``."""
-    lo = max(0.5, min([d.mains_hz, d.ref_hz] + [f for _, f in d.lines if f > 0]) / 20)
+    lo = max(0.5, min([d.mains_hz, d.ref_hz] + [ln.hz for ln in d.lines if ln.hz > 0]) / 20)
     hi = upto or d.nyquist_hz
     f = np.geomspace(lo, hi, n)
-    return np.unique(np.concatenate([f, [d.ref_hz] + [x for _, x in d.lines if lo <= x <= hi]]))
+    return np.unique(np.concatenate([f, [d.ref_hz] + [ln.hz for ln in d.lines if lo <= ln.hz <= hi]]))
 
 
 def draw_all(d, rep, tick=None) -> dict[str, list[str]]:
@@ -64,7 +64,7 @@ def _marks(ax, d, upto: float, labels: bool = True) -> None:
             ax.vlines(xs, 0, 1, transform=tr, label=label if labels else None, **kw)
 
     group([d.ref_hz], f"reference {si(d.ref_hz, 'Hz')}", color="#1b7f3b", lw=1.4)
-    group([f for _, f in d.lines], "interferers (DC, mains x1..x10, listed)",
+    group([ln.hz for ln in d.lines], "interferers (DC, mains x1..x10, listed)",
           color="#8a8f99", lw=0.7, linestyles=":")
     group([d.nyquist_hz], "Nyquist", color="#333333", lw=1.0, linestyles="--")
     group([k * d.fs + s * d.ref_hz for k in (1, 2, 3) for s in (-1, 1)],
@@ -73,7 +73,7 @@ def _marks(ax, d, upto: float, labels: bool = True) -> None:
 
 def _front_figure(d, rep) -> str:
     fe = d.settings.frontend
-    upto = max(3.2 * d.fs, max([f for _, f in d.lines] + [0]) * 1.5)
+    upto = max(3.2 * d.fs, max([ln.hz for ln in d.lines] + [0]) * 1.5)
     f = frequency_grid(d, upto)
     fig, (am, ph) = figure(8.0, 6.0, rows=2, sharex=True)
     for s in fe.stages:

@@ -32,7 +32,7 @@ from livefilt.errors import SettingError
 from livefilt.units import si
 
 __all__ = ["reference_hz", "Design", "design", "parts_rows", "chain_settings", "write_report",
-           "print_table", "to_document", "main"]
+           "print_table", "to_document", "line_hz", "main"]
 
 
 def reference_hz(settings: Settings) -> float:
@@ -311,6 +311,12 @@ def _ladder_cutoffs(st):
     return cutoff_of
 
 
+def line_hz(r: dict) -> str:
+    """``"150 Hz ± 0.6 Hz"``: a line's frequency and its wander."""
+    text = si(r["hz"], "Hz") if r["hz"] else "0 Hz"
+    return text + (f" ± {r['wander_hz']:.2g} Hz" if r.get("wander_hz") else "")
+
+
 def _z(x: float, tiny: float = 5e-3) -> float:
     """No "-0.0" on a page."""
     return 0.0 if abs(x) < tiny else x
@@ -383,12 +389,14 @@ def _interferer_html(c, rep) -> str:
         head.append("lock-in low-pass at the offset")
     rows = []
     for r in c.interferers:
-        row = [r["label"], si(r["hz"], "Hz") if r["hz"] else "0 Hz", _db_text(r["attenuation_db"])]
+        row = [r["label"], line_hz(r), _db_text(r["attenuation_db"])]
         if sel:
             row.append(_db_text(r["lockin_rejection_db"]))
         rows.append(row)
-    note = ("Relative to the reference. The lock-in's own rejection (its output low-pass at the line's "
+    note = ("Relative to the reference; mains lines at the worst point of the grid's wander "
+            f"(±{predict.MAINS_WANDER_HZ:g} Hz per harmonic number). The lock-in's own rejection (its output low-pass at the line's "
             "distance from the reference) is shown apart; the two add up at the output." if sel else
-            "Relative to the reference. The RMS detector has no selectivity of its own: what the filters "
+            "Relative to the reference; mains lines at the worst point of the grid's wander "
+            f"(±{predict.MAINS_WANDER_HZ:g} Hz per harmonic number). The RMS detector has no selectivity of its own: what the filters "
             "pass, it reads.")
     return rep.paragraphs(note) + rep.table(head, rows)

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Mapping, Sequence
+from typing import Any, Callable, Mapping, NamedTuple, Sequence
 
 import numpy as np
 from scipy import signal
@@ -32,7 +32,7 @@ from livefilt.dsp.design import StageSpec, chain_sos, frequency_response
 from livefilt.dsp.detect import DetectorSpec, ReferenceSpec, make_detector
 from livefilt.errors import SettingError
 
-__all__ = ["DesignSpec", "interferer_lines", "DetectorFigures", "detector_figures",
+__all__ = ["DesignSpec", "Line", "interferer_lines", "MAINS_WANDER_HZ", "DetectorFigures", "detector_figures",
            "DETECTOR_FIGURES", "digital_response", "digital_group_delay", "ChainPaper",
            "chain_on_paper", "step_response", "fold_hz", "alias_lines",
            "predicted_snr_db", "range_at_m", "to_db", "FLOOR_DB", "SETTLE_FRACTION"]
@@ -42,6 +42,8 @@ __all__ = ["DesignSpec", "interferer_lines", "DetectorFigures", "detector_figure
 FLOOR_DB = -200.0
 #: "Settled": within 1 % of the final amplitude and staying there (99 % settling).
 SETTLE_FRACTION = 0.99
+#: How far the mains frequency wanders, +-Hz (REFERENCES row 8, the wider end).
+MAINS_WANDER_HZ = 0.2
 #: The detection band's edge: where the detector's own low-pass rejects 40 dB.
 BAND_REJECTION_DB = 40.0
 
@@ -126,15 +128,29 @@ class DesignSpec:
         return out
 
 
-def interferer_lines(mains_hz: float, listed: Sequence[float] = ()) -> list[tuple[str, float]]:
+class Line(NamedTuple):
+    """A line to check: label, frequency (Hz) and how far it wanders (+- Hz)."""
+
+    label: str
+    hz: float
+    wander_hz: float = 0.0
+
+
+def interferer_lines(mains_hz: float, listed: Sequence[float] = ()) -> list[Line]:
     """Lines to check: DC, mains and its harmonics up to the 10th (the 2nd is also the
-    lamps' flicker, REFERENCES row 8), then the listed lines; as (label, Hz)."""
-    out = [("DC (sunlight, offsets)", 0.0), (f"mains {mains_hz:g} Hz", float(mains_hz))]
-    for k in range(2, 11):
-        label = f"lamp flicker / mains x2" if k == 2 else f"mains x{k}"
-        out.append((label, k * float(mains_hz)))
+    lamps' flicker), then the listed lines.
+
+    The grid's frequency wanders by +-0.1 to 0.2 Hz (REFERENCES row 8), so mains
+    harmonic k is checked over +-k x 0.2 Hz: a notch's exact zero at 50.000 Hz is
+    not what the bench sees.
+    """
+    out = [Line("DC (sunlight, offsets)", 0.0)]
+    for k in range(1, 11):
+        label = (f"mains {mains_hz:g} Hz" if k == 1 else
+                 "lamp flicker / mains x2" if k == 2 else f"mains x{k}")
+        out.append(Line(label, k * float(mains_hz), k * MAINS_WANDER_HZ))
     for f in listed:
-        out.append((f"listed line {_hz(f)}", float(f)))
+        out.append(Line(f"listed line {_hz(f)}", float(f)))
     return out
 
 
@@ -241,12 +257,12 @@ class ChainPaper:
 
 def chain_on_paper(name: str, stages: Sequence[StageSpec], detector: DetectorSpec,
                    frontend_: front.Frontend | None, fs: float, ref_hz: float,
-                   lines: Sequence[tuple[str, float]], simulate: bool = True) -> ChainPaper:
+                   lines: Sequence[Line], simulate: bool = True) -> ChainPaper:
     """Gain, group delay, ENBW, settling and interferer rejection of one chain.
 
     Gain and group delay at the reference are front end x digital stages.  Each
     line below Nyquist gets ``attenuation_db`` (front end and stages, relative to
-    the reference) and, for a frequency-selective detector, ``lockin_rejection_db``
+    the reference, the worst over the line's wander) and, for a frequency-selective detector, ``lockin_rejection_db``
     (the detector's low-pass at the line's offset from the reference), kept apart.
     With ``simulate`` the chain's own 99 % settling after an amplitude step at the
     reference (:func:`step_response`).
@@ -255,14 +271,20 @@ def chain_on_paper(name: str, stages: Sequence[StageSpec], detector: DetectorSpe
     det = detector_figures(detector, ref_hz, fs)
     h_ref = front.response(frontend_, [ref_hz])[0] * digital_response(stages, [ref_hz], fs)[0]
     gd = float(front.group_delay(frontend_, [ref_hz])[0] + digital_group_delay(stages, [ref_hz], fs)[0])
-    below = [(lab, f) for lab, f in lines if f < nyq]
-    fr = np.array([f for _, f in below])
-    h = front.response(frontend_, fr) * digital_response(stages, fr, fs) if below else np.zeros(0)
     rows = []
-    for (label, f), hi in zip(below, h):
-        row = {"label": label, "hz": f, "attenuation_db": to_db(abs(hi) / abs(h_ref))}
+    for ln in lines:
+        if ln.hz >= nyq:
+            continue
+        # worst case over the line's wander: the largest gain, the smallest offset
+        f = np.unique(np.clip(np.linspace(ln.hz - ln.wander_hz, ln.hz + ln.wander_hz,
+                                          41 if ln.wander_hz else 1), 0.0, nyq * 0.99999))
+        h = np.abs(front.response(frontend_, f) * digital_response(stages, f, fs))
+        row = {"label": ln.label, "hz": ln.hz, "attenuation_db": to_db(float(h.max()) / abs(h_ref))}
+        if ln.wander_hz:
+            row["wander_hz"] = ln.wander_hz
         if det.baseband is not None:
-            row["lockin_rejection_db"] = to_db(abs(det.baseband(np.array([abs(f - ref_hz)]))[0]))
+            off = float(np.min(np.abs(f - ref_hz)))
+            row["lockin_rejection_db"] = to_db(abs(det.baseband(np.array([off]))[0]))
         rows.append(row)
     band = detection_band(det, stages, frontend_, fs, ref_hz)
     paper = ChainPaper(name, ref_hz, complex(h_ref), gd, det, rows, band)
@@ -348,13 +370,13 @@ def fold_hz(f: float, fs: float) -> float:
     return r if r <= fs / 2 else fs - r
 
 
-def alias_lines(lines: Sequence[tuple[str, float]], frontend_: front.Frontend | None,
+def alias_lines(lines: Sequence[Line], frontend_: front.Frontend | None,
                 fs: float, ref_hz: float) -> list[dict]:
     """Lines at or above Nyquist: where each folds to and how much the front end
     leaves of it relative to the reference (``front_end_db``)."""
     href = abs(front.response(frontend_, [ref_hz])[0])
     out = []
-    for label, f in lines:
+    for label, f, _ in lines:
         if f >= fs / 2:
             out.append({"label": label, "hz": f, "folds_to_hz": fold_hz(f, fs),
                         "front_end_db": to_db(abs(front.response(frontend_, [f])[0]) / href)})

@@ -16,7 +16,7 @@ import numpy as np
 import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
-from livefilt.analysis.design_report import design
+from livefilt.analysis.design_report import design, line_hz
 from livefilt.dsp import frontend as front
 from livefilt.dsp import predict
 from livefilt.errors import LivefiltError
@@ -123,7 +123,7 @@ class DesignView(QtWidgets.QWidget):
             p.addItem(pg.InfiniteLine(np.log10(d.ref_hz), angle=90, pen=palette.mark_pen("modulation")))
             p.addItem(pg.InfiniteLine(np.log10(d.nyquist_hz), angle=90,
                                       pen=pg.mkPen(palette.FOREGROUND, width=1, style=QtCore.Qt.DashLine)))
-            for _, hz in d.lines[1:]:
+            for _, hz, _ in d.lines[1:]:
                 if hz < d.nyquist_hz:
                     p.addItem(pg.InfiniteLine(np.log10(hz), angle=90, pen=palette.mark_pen("mains")))
         self.gain_plot.setYRange(-100, 10)
@@ -148,12 +148,12 @@ class DesignView(QtWidgets.QWidget):
                 head.append(f"Chain {c.name}: lock-in")
         t.setColumnCount(len(head))
         t.setHorizontalHeaderLabels(head)
-        below = [(lab, hz) for lab, hz in d.lines if hz < d.nyquist_hz]
-        t.setRowCount(len(below))
-        for r, (lab, hz) in enumerate(below):
-            cells = [lab, si(hz, "Hz") if hz else "0 Hz"]
+        rows = d.chains[0].interferers if d.chains else []
+        t.setRowCount(len(rows))
+        for r, first in enumerate(rows):
+            cells = [first["label"], line_hz(first)]
             for c in d.chains:
-                row = next(x for x in c.interferers if x["hz"] == hz and x["label"] == lab)
+                row = c.interferers[r]
                 cells.append(_db_text(row["attenuation_db"]))
                 if c.detector.baseband is not None:
                     cells.append(_db_text(row["lockin_rejection_db"]))

@@ -86,7 +86,7 @@ def test_one_section_lockin_ripples_and_says_so():
 def test_lockin_rejection_is_the_output_lowpass_at_the_offset():
     # n RC sections: |H(f)| = (1 + (2 pi f tau)^2)^(-n/2) (closed form), offset << fs
     spec = DetectorSpec("lockin", 0.1, 24)
-    lines = [("x", 1000.0), ("y", 1370.0 + 7.0)]
+    lines = [predict.Line("x", 1000.0), predict.Line("y", 1370.0 + 7.0)]
     p = predict.chain_on_paper("A", [], spec, None, FS, 1370.0, lines, simulate=False)
     for row in p.interferers:
         off = abs(row["hz"] - 1370.0)
@@ -105,13 +105,15 @@ def test_attenuation_includes_the_front_end():
     mains = next(r for r in p.interferers if r["hz"] == 50)
     fc = 1 / (2 * math.pi * 1e4 * 1e-7)
     hp = lambda f: f / fc / math.hypot(1, f / fc)  # noqa: E731  (RC law, common practice)
-    assert mains["attenuation_db"] == pytest.approx(20 * math.log10(hp(50) / hp(1370)), abs=1e-9)
+    # the worst case over the grid's wander of +-0.2 Hz (REFERENCES row 8): at 50.2 Hz
+    assert mains["wander_hz"] == 0.2
+    assert mains["attenuation_db"] == pytest.approx(20 * math.log10(hp(50.2) / hp(1370)), abs=1e-9)
     assert "lockin_rejection_db" not in mains  # an RMS detector selects nothing itself
 
 
 def test_interferer_lines_cover_mains_to_the_tenth_and_the_listed():
     lines = predict.interferer_lines(60.0, [1000.0])
-    hz = [f for _, f in lines]
+    hz = [f for _, f, _ in lines]
     assert hz == [0.0] + [60.0 * k for k in range(1, 11)] + [1000.0]
     assert "flicker" in lines[2][0]  # lamps flicker at twice mains (REFERENCES row 8)
 
@@ -142,3 +144,17 @@ def test_design_table_validation():
     d = predict.DesignSpec.from_mapping({"signal_at": {"distance_m": 0.5, "amplitude": 1e-3},
                                          "noise_density": 2e-7, "exponent": 4})
     assert predict.DesignSpec.from_mapping(d.to_mapping()) == d
+
+
+def test_a_mains_notch_is_judged_where_the_grid_wanders():
+    # a notch's zero sits exactly at 50 Hz; the grid wanders +-0.2 Hz (REFERENCES row 8),
+    # so the attenuation reported is the notch's at the nearer-passing edge, 49.8 or 50.2 Hz
+    # (the bilinear notch is slightly asymmetric): scipy.signal.iirnotch and freqz
+    notch = [StageSpec.from_mapping({"type": "notch", "at_hz": 50, "q": 30}, FS)]
+    p = predict.chain_on_paper("A", notch, DetectorSpec("lockin", 0.1, 24), None, FS, 1370.0,
+                               predict.interferer_lines(50.0), simulate=False)
+    row = next(r for r in p.interferers if r["hz"] == 50)
+    b, a = signal.iirnotch(50, 30, fs=FS)
+    h = np.abs(signal.freqz(b, a, worN=[49.8, 50.2, 1370.0], fs=FS)[1])
+    assert row["attenuation_db"] == pytest.approx(20 * math.log10(max(h[:2]) / h[2]), abs=1e-6)
+    assert -14 < row["attenuation_db"] < -11  # not "blocked"
