@@ -128,6 +128,9 @@ class DesignView(QtWidgets.QWidget):
                     p.addItem(pg.InfiniteLine(np.log10(hz), angle=90, pen=palette.mark_pen("mains")))
         self.gain_plot.setYRange(-100, 10)
         self.gain_plot.setXRange(np.log10(f[0]), np.log10(f[-1]), padding=0)
+        ticks = _decade_ticks(f[0], f[-1])
+        for p in (self.gain_plot, self.phase_plot):
+            p.getAxis("bottom").setTicks(ticks)
 
     def _fill_chains(self, d) -> None:
         t = self.chain_table
@@ -180,6 +183,15 @@ class DesignView(QtWidgets.QWidget):
 def _grid(d) -> np.ndarray:
     lo = max(1.0, min(d.mains_hz, d.ref_hz) / 20)
     return np.geomspace(lo, d.nyquist_hz * 0.999, 800)
+
+
+def _decade_ticks(lo: float, hi: float):
+    """Labels at the decades only (1 Hz, 10 Hz, ... 10 kHz), unlabelled 2..9 between."""
+    major, minor = [], []
+    for k in range(int(np.floor(np.log10(lo))), int(np.ceil(np.log10(hi))) + 1):
+        major.append((float(k), si(10.0 ** k, "Hz", 3)))
+        minor.extend((float(np.log10(m * 10.0 ** k)), "") for m in range(2, 10))
+    return [major, minor]
 
 
 def _db(h) -> np.ndarray:
