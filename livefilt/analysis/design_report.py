@@ -140,9 +140,17 @@ def design(settings: Settings, simulate: bool = True, tick=None) -> Design:
                             f"{c.ripple_pct:.2f} % (twice the reference leaks through); use a steeper "
                             "slope or a longer time constant")
         for row in c.interferers:
-            if row["hz"] == ref:
-                warnings.append(f"chain {c.name}: {row['label']} sits on the reference: no filter can "
-                                "separate it; move the reference")
+            near = abs(row["hz"] - ref) <= row.get("wander_hz", 0.0)
+            if not near and c.band_hz[0] <= row["hz"] <= c.band_hz[1]:
+                what = row["label"] + ("" if si(row["hz"], "Hz") in row["label"] else f" ({line_hz(row)})")
+                warnings.append(f"chain {c.name}: {what} is inside the detection "
+                                f"band ({si(c.band_hz[0], 'Hz')} to {si(c.band_hz[1], 'Hz')}); it reaches "
+                                "the output attenuated only "
+                                f"{-(row['attenuation_db'] + row.get('lockin_rejection_db', 0.0)):.0f} dB")
+    for ln in lines:
+        if abs(ln.hz - ref) <= ln.wander_hz:
+            warnings.append(f"{ln.label} ({si(ln.hz, 'Hz')}) sits on the reference: no filter can "
+                            "separate them; move the reference between mains harmonics")
     return Design(settings, fs, ref, settings.mains_hz, lines, chains, parts_rows(fe),
                   alias_db, images, warnings)
 

@@ -85,3 +85,14 @@ def test_bad_config_is_one_line(tmp_path):
     assert r.returncode == 2
     assert r.stderr.strip().count("\n") == 0
     assert "frontend.stages[0].series = 'E5'" in r.stderr and "E6, E12, E24, E96" in r.stderr
+
+
+def test_lines_near_or_on_the_reference_are_warned():
+    doc = demo_config().to_mapping()
+    doc["design"]["interferers_hz"] = [1372.0]  # 2 Hz from the reference
+    d = design_report.design(parse_config(doc), simulate=False)
+    assert any(w.startswith("chain A: listed line 1.372 kHz is inside the detection band") for w in d.warnings)
+    # the serial bench modulates at 500 Hz, the 10th harmonic of 50 Hz mains
+    from livefilt.config import load_config
+    d = design_report.design(load_config(ROOT / "configs" / "serial-bench.toml"), simulate=False)
+    assert any(w.startswith("mains x10 (500 Hz) sits on the reference") for w in d.warnings)
