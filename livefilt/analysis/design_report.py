@@ -159,11 +159,11 @@ def design(settings: Settings, simulate: bool = True, tick=None) -> Design:
 
 def to_document(d: Design) -> dict:
     """The ``design.toml`` document."""
-    doc: dict = {"design": {"config": d.settings.origin, "rate_hz": d.fs, "reference_hz": d.ref_hz,
+    doc: dict = {"report": {"config": d.settings.origin, "rate_hz": d.fs, "reference_hz": d.ref_hz,
                             "mains_hz": d.mains_hz, "nyquist_hz": d.nyquist_hz,
                             "attenuation_floor_db": predict.FLOOR_DB,
                             "warnings": list(d.warnings)}}
-    fe: dict = {"stages": [s.describe() for s in d.settings.frontend.stages]
+    fe: dict = {"stages": [f"{s.name}: {s.describe()}" for s in d.settings.frontend.stages]
                 if d.settings.frontend else []}
     if d.alias_attenuation_db is not None:
         fe["alias_attenuation_db"] = d.alias_attenuation_db
