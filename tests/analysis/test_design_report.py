@@ -52,7 +52,7 @@ def test_design_command_writes_the_report(tmp_path, artifacts):
 
 
 def test_demo_prediction_and_warnings(tmp_path):
-    d = design_report.design(demo_config())
+    d = design_report.design(demo_config(), simulate=False)  # the step is the CLI test's
     doc = design_report.to_document(d)
     # the demo has no anti-alias filter: the report must say the image folds in
     assert any("image" in w for w in d.warnings)
