@@ -244,12 +244,20 @@ def print_table(d: Design, out=sys.stdout) -> None:
 
 
 def write_report(d: Design, folder, tick=None) -> "Path":
-    """Write design.toml, the PNG figures and design.html into ``folder``;
+    """Write design.toml, interferers.csv (and parts.csv), the PNG figures and
+    design.html into ``folder``;
     ``tick()`` after each figure (progress)."""
     from livefilt.analysis.report import ReportFolder
 
     rep = ReportFolder(folder, "Design on paper")
     rep.toml("design.toml", to_document(d))
+    rep.csv("interferers.csv", ["chain", "label", "hz", "wander_hz", "attenuation_db", "lockin_rejection_db"],
+            [[c.name, r["label"], r["hz"], r.get("wander_hz", 0.0), r["attenuation_db"],
+              r.get("lockin_rejection_db", math.nan)] for c in d.chains for r in c.interferers])
+    if d.parts:
+        keys = ["stage", "r_ohm", "c_farad", "cutoff_hz", "cutoff_low_hz", "cutoff_high_hz",
+                "worst_low_hz", "worst_high_hz", "r_tolerance_pct", "c_tolerance_pct"]
+        rep.csv("parts.csv", keys, [[p[k] for k in keys] for p in d.parts])
     from livefilt.analysis import design_figures as figs
     written = figs.draw_all(d, rep, tick)
     intro = [f"Config {d.settings.origin}: sampled at {si(d.fs, 'Hz')} (Nyquist {si(d.nyquist_hz, 'Hz')}), "
@@ -293,7 +301,7 @@ def main(args) -> int:
         d = design(settings, tick=lambda: bar.update(1))
         folder = write_report(d, out, tick=lambda: bar.update(1))
     print_table(d)
-    print(f"wrote {folder / 'design.html'}, design.toml and figures", file=sys.stderr)
+    print(f"wrote {folder / 'design.html'}, design.toml, CSV tables and figures", file=sys.stderr)
     return 0
 
 

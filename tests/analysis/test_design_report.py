@@ -45,6 +45,10 @@ def test_design_command_writes_the_report(tmp_path, artifacts):
         data = (out / name).read_bytes()
         assert data[:8] == b"\x89PNG\r\n\x1a\n"
         (artifacts / f"design-{name}").write_bytes(data)
+    rows = (out / "interferers.csv").read_text().splitlines()
+    assert rows[0] == "chain,label,hz,wander_hz,attenuation_db,lockin_rejection_db"
+    assert len(rows) == 1 + 2 * 11
+    assert (out / "parts.csv").read_text().startswith("stage,r_ohm,c_farad,cutoff_hz")
     page = (out / "design.html").read_text()
     assert page.count("data:image/png;base64,") == 5 and "<img" in page and "http" not in page.split("<body>")[1]
     assert "Cautions" in page and "Interferers, chain A" in page
