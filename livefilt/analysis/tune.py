@@ -91,24 +91,24 @@ def _put(chain: dict, key: str, value: Any, grid: str) -> None:
     try:
         steps = _steps(key)
     except ValueError:
-        raise SettingError(where, key, "a dotted key such as detector.time_constant_s or stages.1.q") from None
+        raise SettingError(where, value, "a dotted key such as detector.time_constant_s or stages.1.q") from None
     node: Any = chain
     for i, s in enumerate(steps[:-1]):
         path = ".".join(str(x) for x in steps[:i + 1])
         if isinstance(s, int):
             if not isinstance(node, list) or not 0 <= s < len(node):
                 n = len(node) if isinstance(node, list) else 0
-                raise SettingError(where, key, f"the chain has no {path} (its list holds {n} "
+                raise SettingError(where, value, f"the chain has no {path} (its list holds {n} "
                                    f"item(s), numbered from 0)")
             node = node[s]
         else:
             if not isinstance(node, dict) or s not in node:
                 have = ", ".join(sorted(node)) if isinstance(node, dict) else "nothing"
-                raise SettingError(where, key, f"the chain has no {path}; it has: {have}")
+                raise SettingError(where, value, f"the chain has no {path}; it has: {have}")
             node = node[s]
     last = steps[-1]
     if isinstance(last, int) or not isinstance(node, dict):
-        raise SettingError(where, key, "must end in a setting's name, such as .q or .cutoff_hz")
+        raise SettingError(where, value, "must end in a setting's name, such as .q or .cutoff_hz")
     node[last] = value
 
 
