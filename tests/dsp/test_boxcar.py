@@ -12,10 +12,8 @@ import math
 
 import numpy as np
 import pytest
-from scipy.special import gammaincinv
 
-from livefilt.dsp.detect import (BoxcarLockIn, DetectorSpec, ReferenceSpec, detector_figures,
-                                 make_detector)
+from livefilt.dsp.detect import BoxcarLockIn, DetectorSpec, ReferenceSpec, make_detector
 
 FS = 48000.0
 
@@ -68,35 +66,34 @@ def test_boxcar_noise_reads_density_times_sqrt_of_one_over_2t():
 
 @pytest.mark.parametrize("slope", [6, 12, 18, 24])
 def test_figures_per_detector(slope):
+    # the design report's one function per detector (livefilt.dsp.predict)
+    # picks the boxcar up through its enbw_hz / settling_s / baseband_response
+    from livefilt.dsp import predict
     spec = DetectorSpec.from_mapping({"time_constant_s": 0.05, "slope_db_oct": slope}, FS)
-    fig = detector_figures(spec, FS, 1370.0)
     n = slope // 6
-    ripple = (1 + (4 * math.pi * 1370 * 0.05) ** 2) ** (-n / 2)  # tiny at tau 50 ms
-    assert fig["settling_s"] == pytest.approx(0.05 * gammaincinv(n, 0.99 + ripple))
-    assert fig["enbw_hz"] == pytest.approx(make_detector(
-        spec, ReferenceSpec(1370.0), FS, 480).enbw_hz)
-    box = detector_figures(DetectorSpec.from_mapping({"type": "boxcar", "settling_s": 0.1}, FS),
-                           FS, 1370.0)
-    assert box["enbw_hz"] * box["settling_s"] == pytest.approx(0.5)
+    box = predict.detector_figures(
+        DetectorSpec.from_mapping({"type": "boxcar", "settling_s": 0.1}, FS), 1370.0, FS)
+    assert box.enbw_hz == pytest.approx(1 / (2 * 0.1))  # 137 whole periods: T = 0.1 s
+    assert box.settling_s == pytest.approx(0.99 * 0.1)
+    assert box.baseband(np.array([0.0, 10.0]))[1] == pytest.approx(0.0, abs=1e-9)  # 1/T null
     # the lag-noise products issue 13 quotes: 1.151 (n = 1), 0.83 (n = 2),
-    # 0.785 (n = 4) at the 1 % band, from the two closed forms (ripple aside:
-    # no reference frequency given)
-    bare = detector_figures(spec, FS)
+    # 0.785 (n = 4) at the 1 % band, from the two closed forms; the boxcar 0.495
+    lock = predict.detector_figures(spec, 1370.0, FS)
     if n != 3:
-        assert bare["enbw_x_settling"] == pytest.approx({1: 1.151, 2: 0.830, 4: 0.785}[n],
-                                                       abs=0.003)
+        assert lock.enbw_settling == pytest.approx({1: 1.151, 2: 0.830, 4: 0.785}[n], abs=0.003)
+    assert box.enbw_settling == pytest.approx(0.495)
 
 
-def test_one_section_ripple_never_settles_in_a_1_percent_band():
+def test_one_section_ripple_is_accounted_in_settling():
     # tau 10 ms at 1370 Hz, one section: the 2 f0 ripple is 0.58 % of the
     # signal (gain of the section at 2740 Hz); the step's tail must then fall
     # to 0.42 %: 54.7 ms instead of the 46 ms a plain P^-1(1, 0.99) says; at a
     # 0.5 % band it never settles
-    spec = DetectorSpec.from_mapping({"time_constant_s": 0.01, "slope_db_oct": 6}, FS)
-    fig = detector_figures(spec, FS, 1370.0)
-    assert fig["ripple"] == pytest.approx(1 / math.hypot(1, 4 * math.pi * 1370 * 0.01))
-    assert fig["ripple"] == pytest.approx(0.0058, abs=0.0001)
-    assert fig["settling_s"] == pytest.approx(0.01 * math.log(1 / (0.01 - fig["ripple"])))
-    assert fig["settling_s"] == pytest.approx(0.0547, abs=0.0005)
-    tight = detector_figures(spec, FS, 1370.0, band=0.005)
-    assert tight["settling_s"] == math.inf and "never settles" in tight["note"]
+    det = make_detector(DetectorSpec.from_mapping({"time_constant_s": 0.01, "slope_db_oct": 6},
+                                                  FS), ReferenceSpec(1370.0), FS, 480)
+    assert det.ripple_2f0 == pytest.approx(1 / math.hypot(1, 4 * math.pi * 1370 * 0.01))
+    assert det.ripple_2f0 == pytest.approx(0.0058, abs=0.0001)
+    assert det.settled_s(0.01) == pytest.approx(0.01 * math.log(1 / (0.01 - det.ripple_2f0)))
+    assert det.settled_s(0.01) == pytest.approx(0.0547, abs=0.0005)
+    assert det.settling_s(0.99) == pytest.approx(0.046, abs=0.0005)  # the tail alone
+    assert det.settled_s(0.005) == math.inf
