@@ -182,8 +182,8 @@ class StripChart(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(0)
         names = tap.names
         self.plots, self.curves = [], []
-        rows = [(", ".join(names[i] for i in inputs), palette.raw_pen(), inputs)]
-        rows += [(f"{name} output", palette.chain_pen(k, 1.0).color(), [i])
+        rows = [(", ".join(names[i] for i in inputs) + " input", palette.raw_pen(), inputs)]
+        rows += [(f"after chain {name}", palette.chain_pen(k, 1.0).color(), [i])
                  for k, (i, name) in enumerate(chains)]
         for r, (title, pen, streams) in enumerate(rows):
             p = self.addPlot(row=r, col=0)

@@ -1,0 +1,137 @@
+"""The A/B verdict: which chain sees the target better, by how many dB, in words.
+
+"Seeing better" is the higher signal-to-noise ratio (a chain's gain lifts its
+noise with its signal, so amplitude alone does not decide).  The sentence
+judges the latest SNRs, the same figures shown under it (each noise estimate
+already spans the detector's noise window, so they move slowly); under it,
+each chain's latest signal, noise and SNR, every number with its unit.  It
+reads the chains' :class:`~.strength.RowHistory` (the window updates them).
+
+API
+---
+- :func:`verdict_words` (snr_by_chain) -> the sentence.
+- :class:`VerdictPanel` (histories, units) with ``refresh()``.
+"""
+
+from __future__ import annotations
+
+import math
+
+from PySide6 import QtCore, QtGui, QtWidgets
+
+from livefilt.units import si
+from livefilt.window import palette
+
+__all__ = ["VerdictPanel", "verdict_words", "EVEN_DB", "CLEAR_DB"]
+
+EVEN_DB = 0.5    # closer than this: "equally well"
+CLEAR_DB = 10.0  # below this a chain is said not to see the target clearly
+
+
+def verdict_words(snr_db: dict[str, float]) -> str:
+    """The verdict on chains' SNRs (dB, NaN while a chain settles), as a sentence."""
+    ready = {k: v for k, v in snr_db.items() if math.isfinite(v)}
+    if not snr_db:
+        return "Waiting for the first readings."
+    if len(ready) < len(snr_db):
+        waiting = [k for k in snr_db if k not in ready]
+        return (f"Waiting for {' and '.join(waiting)} to settle before judging "
+                f"{'its' if len(waiting) == 1 else 'their'} noise.")
+    if len(ready) == 1:
+        (name, v), = ready.items()
+        return f"{name} sees the target {v:.1f} dB above its noise."
+    ranked = sorted(ready.items(), key=lambda kv: -kv[1])
+    (best, hi), (second, lo) = ranked[0], ranked[1]
+    if hi < CLEAR_DB:
+        return (f"Neither {best} nor {second} sees the target clearly: SNR {hi:.1f} and "
+                f"{lo:.1f} dB, under {CLEAR_DB:g} dB.")
+    if hi - lo < EVEN_DB:
+        return f"{best} and {second} see the target equally well (within {EVEN_DB:g} dB)."
+    text = f"{best} sees the target {hi - lo:.1f} dB better than {second}"
+    if lo < CLEAR_DB:
+        text += f"; {second} has lost it in the noise"
+    return text + "."
+
+
+class VerdictPanel(QtWidgets.QFrame):
+    """The verdict sentence in large type, each chain's figures under it."""
+
+    def __init__(self, histories: dict, units: str, parent=None):
+        super().__init__(parent)
+        self.histories = histories
+        self.units = units
+        self.setObjectName("verdict")
+        self.setStyleSheet(palette.CARD_STYLE.format(name="verdict", rule=palette.VERDICT_RULE))
+        lay = QtWidgets.QVBoxLayout(self)
+        lay.setContentsMargins(14, 6, 10, 6)
+        lay.setSpacing(2)
+        head = QtWidgets.QLabel("Which chain sees the target better?")
+        head.setStyleSheet(palette.CARD_HEAD)
+        lay.addWidget(head)
+        self.verdict = QtWidgets.QLabel("Waiting for the first readings.")
+        self.verdict.setFont(palette.big_font(19, bold=True, mono=False))
+        self.verdict.setWordWrap(True)
+        # fixed height: a new sentence repaints this label alone, not the window's layout
+        fm = QtGui.QFontMetrics(self.verdict.font())
+        self.verdict.setFixedHeight(2 * fm.lineSpacing() + 4)
+        self.verdict.setAlignment(QtCore.Qt.AlignLeft | QtCore.Qt.AlignVCenter)
+        lay.addWidget(self.verdict)
+        grid = QtWidgets.QGridLayout()
+        grid.setHorizontalSpacing(10)
+        grid.setVerticalSpacing(0)
+        self.labels = {}
+        styles = ["──", "- -", "···", "-·-"]
+        for k, name in enumerate(histories):
+            colour = palette.chain_colour(k)
+            tag = QtWidgets.QLabel(f"{name} {styles[k % len(styles)]}")
+            tag.setFont(palette.big_font(13))
+            tag.setStyleSheet(f"color: {colour};")
+            grid.addWidget(tag, k, 0)
+            row = []
+            for j, (what, sample) in enumerate((("signal", "888.8 m" + units + " rms"),
+                                                ("noise", "888.8 m" + units + " rms"),
+                                                ("SNR", "−888.8 dB"))):
+                cap = QtWidgets.QLabel(what)
+                cap.setStyleSheet(f"color: {palette.FOREGROUND};")
+                grid.addWidget(cap, k, 1 + 2 * j, alignment=QtCore.Qt.AlignRight)
+                lab = QtWidgets.QLabel("—")
+                lab.setFont(palette.big_font(13, bold=j == 2))
+                lab.setStyleSheet(f"color: {colour};")
+                lab.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
+                fix_size(lab, sample)
+                grid.addWidget(lab, k, 2 + 2 * j)
+                row.append(lab)
+            self.labels[name] = row
+        grid.setColumnStretch(7, 1)
+        lay.addLayout(grid)
+        self.snr_judged: dict[str, float] = {}
+
+    def refresh(self) -> None:
+        """Latest figures per chain and the sentence on them."""
+        judged = {}
+        for name, h in self.histories.items():
+            r = h.latest
+            if r is None:
+                continue
+            a, n, s = float(r["amplitude"]), float(r["noise"]), float(r["snr_db"])
+            la, ln, ls = self.labels[name]
+            la.setText(_rms(a, self.units))
+            ln.setText(_rms(n, self.units))
+            ls.setText("—" if not math.isfinite(s) else f"{s:5.1f} dB")
+            judged[name] = s
+        self.snr_judged = judged
+        text = verdict_words(judged)
+        if text != self.verdict.text():
+            self.verdict.setText(text)
+
+
+def _rms(x: float, units: str) -> str:
+    """``"78.43 µFS rms"``; a dash alone while the figure is not known yet."""
+    return si(x, units) + " rms" if math.isfinite(x) else "—"
+
+
+def fix_size(label: QtWidgets.QLabel, sample: str) -> None:
+    """Fix a changing label's size to fit ``sample``: a fixed-size widget's new
+    text repaints the label alone, not the whole window's layout."""
+    fm = QtGui.QFontMetrics(label.font())
+    label.setFixedSize(fm.horizontalAdvance(sample) + 6, fm.height() + 4)
