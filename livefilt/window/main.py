@@ -87,6 +87,8 @@ keeps its last good settings. Hover over a field to see its config key.</p>
 class MainWindow(QtWidgets.QMainWindow):
     """The live window of one running engine (started by the caller)."""
 
+    closed = QtCore.Signal()  # the window closed (its engine is stopped)
+
     def __init__(self, engine, strip_seconds: float = 10.0, parent=None):
         super().__init__(parent)
         palette.setup()
@@ -299,6 +301,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.timer.stop()
         self.engine.stop()  # also closes a recording, with its files complete
         super().closeEvent(event)
+        self.closed.emit()
 
     # -- private --------------------------------------------------------
     def _timeline(self) -> tuple[float, float]:
@@ -366,7 +369,12 @@ def run_window(settings, duration_s: float | None = None, screenshot=None, out=N
     """
     from livefilt.stream.engine import Engine
 
-    app = QtWidgets.QApplication.instance() or QtWidgets.QApplication(["livefilt"])
+    app = QtWidgets.QApplication.instance()
+    # an application already running (a test's, an embedding one) gets a loop of our own:
+    # quitting the application itself would leave its later event loops returning at once
+    loop = QtCore.QEventLoop() if app is not None else None
+    app = app or QtWidgets.QApplication(["livefilt"])
+    loop = loop or app
     engine = Engine(settings, tap_seconds=60)
     try:
         win = MainWindow(engine)
@@ -385,11 +393,12 @@ def run_window(settings, duration_s: float | None = None, screenshot=None, out=N
             if not win.save_screenshot(screenshot):
                 log.warning("could not save the screenshot to %s", screenshot)
         win.close()  # stops the engine and closes the recording
-        app.quit()  # other windows may be open (a test's); exec() must return
+        loop.quit()  # other windows may be open (a test's); exec() must return
 
     if duration_s is not None:
         QtCore.QTimer.singleShot(int(max(0.0, duration_s) * 1000), finish)
-    app.exec()
+    win.closed.connect(loop.quit)
+    loop.exec()
     win.close()
     err = engine.error
     if isinstance(err, LivefiltError):
