@@ -21,6 +21,7 @@ from PySide6 import QtCore, QtWidgets
 
 from livefilt.errors import LivefiltError
 from livefilt.window import palette
+from livefilt.window.labels import LineBox
 
 __all__ = ["NotesBar", "RecordBar"]
 
@@ -70,10 +71,10 @@ class NotesBar(QtWidgets.QFrame):
         self.current = QtWidgets.QLabel("— m")
         self.current.setFont(palette.big_font(26, mono=False))
         self.current.setStyleSheet("color: #b9b2a6;")  # pale until the first mark
-        lay.addWidget(self.current)
+        lay.addWidget(LineBox(self.current))
         self.age = QtWidgets.QLabel("no mark yet: type the target's distance and press Enter")
         self.age.setStyleSheet(f"color: {palette.FOREGROUND};")
-        lay.addWidget(self.age)
+        lay.addWidget(LineBox(self.age))
         form = QtWidgets.QFormLayout()
         form.setContentsMargins(0, 4, 0, 0)
         self.distance = QtWidgets.QLineEdit()

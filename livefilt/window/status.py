@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from PySide6 import QtGui, QtWidgets
+from PySide6 import QtWidgets
+
+from livefilt.window.labels import fix_size
 
 __all__ = ["StatusLine"]
 
@@ -24,8 +26,7 @@ class StatusLine(QtWidgets.QStatusBar):
         for w, sample in ((self.losses, "overruns 99999, dropped 9999999999 samples"),
                           (self.load, "processing 100.0 % of real time"),
                           (self.fps, "display 999 frames/s")):
-            fm = QtGui.QFontMetrics(w.font())
-            w.setFixedSize(fm.horizontalAdvance(sample) + 8, fm.height() + 4)
+            fix_size(w, sample)
         for w in (self.source, self.rate, self.losses, self.load, self.fps):
             self.addWidget(w)
         self.addPermanentWidget(self.note)

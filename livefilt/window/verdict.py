@@ -17,10 +17,11 @@ from __future__ import annotations
 
 import math
 
-from PySide6 import QtCore, QtGui, QtWidgets
+from PySide6 import QtCore, QtWidgets
 
 from livefilt.units import si
 from livefilt.window import palette
+from livefilt.window.labels import LineBox, fix_size
 
 __all__ = ["VerdictPanel", "verdict_words", "EVEN_DB", "CLEAR_DB"]
 
@@ -71,11 +72,8 @@ class VerdictPanel(QtWidgets.QFrame):
         self.verdict = QtWidgets.QLabel("Waiting for the first readings.")
         self.verdict.setFont(palette.big_font(19, bold=True, mono=False))
         self.verdict.setWordWrap(True)
-        # fixed height: a new sentence repaints this label alone, not the window's layout
-        fm = QtGui.QFontMetrics(self.verdict.font())
-        self.verdict.setFixedHeight(2 * fm.lineSpacing() + 4)
         self.verdict.setAlignment(QtCore.Qt.AlignLeft | QtCore.Qt.AlignVCenter)
-        lay.addWidget(self.verdict)
+        lay.addWidget(LineBox(self.verdict, lines=2))
         grid = QtWidgets.QGridLayout()
         grid.setHorizontalSpacing(10)
         grid.setVerticalSpacing(0)
@@ -128,10 +126,3 @@ class VerdictPanel(QtWidgets.QFrame):
 def _rms(x: float, units: str) -> str:
     """``"78.43 µFS rms"``; a dash alone while the figure is not known yet."""
     return si(x, units) + " rms" if math.isfinite(x) else "—"
-
-
-def fix_size(label: QtWidgets.QLabel, sample: str) -> None:
-    """Fix a changing label's size to fit ``sample``: a fixed-size widget's new
-    text repaints the label alone, not the whole window's layout."""
-    fm = QtGui.QFontMetrics(label.font())
-    label.setFixedSize(fm.horizontalAdvance(sample) + 6, fm.height() + 4)
