@@ -159,7 +159,7 @@ class MainWindow(QtWidgets.QMainWindow):
         strip_box.layout().insertLayout(0, bar)
         sig.addWidget(strip_box)
         sig.addWidget(self.spectrum)
-        sig.setSizes([470, 400])
+        sig.setSizes([520, 350])
         self.rooms.addWidget(sig)
 
         # Chains and design: the forms beside the design view

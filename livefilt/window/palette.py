@@ -38,8 +38,7 @@ WALK_RULE = MARKER          # brick, as the distance marks
 #: the room switcher: plain words, the chosen room underlined in plum
 ROOM_STYLE = ("QToolButton { border: none; padding: 4px 12px 3px 12px; color: #5d6770; "
               "font-size: 10.5pt; background: transparent; }"
-              "QToolButton:checked { color: #2c2540; border-bottom: 3px solid #6b4c9a; "
-              "font-weight: bold; }"
+              "QToolButton:checked { color: #2c2540; border-bottom: 3px solid #6b4c9a; }"
               "QToolButton:hover { color: #2c2540; }")
 CAUTION_STYLE = ("QFrame { background: #fbf0d0; border: 1px solid #d9b860; }"
                  "QLabel { color: #4a3b10; border: none; }")
