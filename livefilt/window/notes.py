@@ -60,14 +60,11 @@ class NotesBar(QtWidgets.QFrame):
     def __init__(self, engine, parent=None):
         super().__init__(parent)
         self.engine = engine
-        self.setObjectName("walk")
-        self.setStyleSheet(palette.CARD_STYLE.format(name="walk", rule=palette.WALK_RULE))
         lay = QtWidgets.QVBoxLayout(self)
         lay.setContentsMargins(14, 6, 10, 8)
         lay.setSpacing(3)
-        head = QtWidgets.QLabel("Walk-away: where is the target?")
-        head.setStyleSheet(palette.CARD_HEAD)
-        lay.addWidget(head)
+        lay.addWidget(palette.card(self, "walk", palette.WALK_RULE,
+                                   "Walk-away: where is the target?"))
         self.current = QtWidgets.QLabel("— m")
         self.current.setFont(palette.big_font(26, mono=False))
         self.current.setStyleSheet("color: #b9b2a6;")  # pale until the first mark
@@ -178,13 +175,10 @@ class RecordBar(QtWidgets.QFrame):
         super().__init__(parent)
         self.engine = engine
         self._t0 = None
-        self.setObjectName("record")
-        self.setStyleSheet(palette.CARD_STYLE.format(name="record", rule=palette.WALK_RULE))
         form = QtWidgets.QFormLayout(self)
         form.setContentsMargins(14, 6, 10, 6)
-        head = QtWidgets.QLabel("Recording: the run and its marks on disk")
-        head.setStyleSheet(palette.CARD_HEAD)
-        form.addRow(head)
+        form.addRow(palette.card(self, "record", palette.WALK_RULE,
+                                 "Recording: the run and its marks on disk"))
         self.parent_dir = QtWidgets.QLineEdit(parent_dir)
         self.parent_dir.setToolTip("A new run folder is made inside this folder.")
         form.addRow("Into folder", self.parent_dir)

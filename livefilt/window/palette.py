@@ -9,11 +9,11 @@ input is a neutral slate; marks (modulation, mains, distance notes) are muted.
 from __future__ import annotations
 
 import pyqtgraph as pg
-from PySide6 import QtCore, QtGui
+from PySide6 import QtCore, QtGui, QtWidgets
 
 __all__ = ["BACKGROUND", "FOREGROUND", "RAW", "chain_colour", "chain_pen", "raw_pen",
            "mark_pen", "big_font", "ERROR_STYLE", "CAUTION_STYLE", "CARD_STYLE", "CARD_HEAD",
-           "VERDICT_RULE", "WALK_RULE", "ROOM_STYLE"]
+           "VERDICT_RULE", "WALK_RULE", "ROOM_STYLE", "card"]
 
 BACKGROUND = "#f7f6f2"      # warm paper
 FOREGROUND = "#37414a"      # axis text
@@ -75,3 +75,12 @@ def big_font(point_size: int, bold: bool = True, mono: bool = True) -> QtGui.QFo
 def setup() -> None:
     """Global pyqtgraph options (call once, before plots are made)."""
     pg.setConfigOptions(background=BACKGROUND, foreground=FOREGROUND, antialias=False)
+
+
+def card(frame: QtWidgets.QFrame, name: str, rule: str, title: str) -> QtWidgets.QLabel:
+    """Dress ``frame`` as a card with a ``rule``-coloured left edge; return its head label."""
+    frame.setObjectName(name)
+    frame.setStyleSheet(CARD_STYLE.format(name=name, rule=rule))
+    head = QtWidgets.QLabel(title)
+    head.setStyleSheet(CARD_HEAD)
+    return head

@@ -61,14 +61,11 @@ class VerdictPanel(QtWidgets.QFrame):
         super().__init__(parent)
         self.histories = histories
         self.units = units
-        self.setObjectName("verdict")
-        self.setStyleSheet(palette.CARD_STYLE.format(name="verdict", rule=palette.VERDICT_RULE))
         lay = QtWidgets.QVBoxLayout(self)
         lay.setContentsMargins(14, 6, 10, 6)
         lay.setSpacing(2)
-        head = QtWidgets.QLabel("Which chain sees the target better?")
-        head.setStyleSheet(palette.CARD_HEAD)
-        lay.addWidget(head)
+        lay.addWidget(palette.card(self, "verdict", palette.VERDICT_RULE,
+                                   "Which chain sees the target better?"))
         self.verdict = QtWidgets.QLabel("Waiting for the first readings.")
         self.verdict.setFont(palette.big_font(19, bold=True, mono=False))
         self.verdict.setWordWrap(True)

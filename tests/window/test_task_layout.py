@@ -23,8 +23,7 @@ from PySide6 import QtWidgets  # noqa: E402
 
 from livefilt.config import demo_config  # noqa: E402
 from livefilt.dsp.design import DESIGNS, STAGE_TYPES  # noqa: E402
-from livefilt.stream.engine import Engine  # noqa: E402
-from livefilt.window import MainWindow, run_window  # noqa: E402
+from livefilt.window import run_window  # noqa: E402
 from livefilt.window.designview import DesignView  # noqa: E402
 from livefilt.window.rangeview import RangeView  # noqa: E402
 from livefilt.window.verdict import verdict_words  # noqa: E402
@@ -32,17 +31,6 @@ from livefilt.window.verdict import verdict_words  # noqa: E402
 #: a key's unit suffix -> the unit its label must end with
 UNITS = {"_hz": "(Hz)", "_s": "(s)", "_db": "(dB)", "_deg": "(°)", "_ohm": "(Ω)",
          "_farad": "(F)", "_db_oct": "(dB/oct)"}
-
-
-@pytest.fixture(scope="module")
-def win(qapp):
-    engine = Engine(demo_config(), tap_seconds=60)
-    w = MainWindow(engine)
-    engine.start()
-    w.show()
-    yield w
-    w.close()
-    assert engine.error is None
 
 
 def all_fields(win):

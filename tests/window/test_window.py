@@ -25,24 +25,13 @@ from livefilt.config import demo_config, load_config, parse_config  # noqa: E402
 from livefilt.stream.engine import Engine  # noqa: E402
 from livefilt.errors import SettingError  # noqa: E402
 from livefilt.runs.record import read_run  # noqa: E402
-from livefilt.window import MainWindow, run_window  # noqa: E402
+from livefilt.window import run_window  # noqa: E402
 from livefilt.dsp.detect import READING_DTYPE  # noqa: E402
 from livefilt.stream.taps import Tap  # noqa: E402
 from livefilt.window.spectrum import welch_db  # noqa: E402
 from livefilt.window.strip import MinMaxReducer  # noqa: E402
 
 FS = 48000.0
-
-
-@pytest.fixture(scope="module")
-def win(qapp):
-    engine = Engine(demo_config(), tap_seconds=60)
-    w = MainWindow(engine)
-    engine.start()
-    w.show()
-    yield w
-    w.close()
-    assert engine.error is None
 
 
 def shot(w, artifacts, name):
