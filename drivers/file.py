@@ -18,6 +18,7 @@ import threading
 import tomllib
 from pathlib import Path
 
+from livefilt import fields
 from livefilt.errors import RecordingError, SettingError, SourceError
 from livefilt.acquire.source import Pacer, Source
 from livefilt.runs.wavio import WavReader
@@ -53,12 +54,11 @@ class FileSource(Source):
         path = options.get("path")
         if not isinstance(path, str) or not path:
             raise SettingError("source.path", path, "must name a .wav file or a run folder")
-        pace = options.get("pace", "realtime")
-        if pace not in ("realtime", "fast"):
-            raise SettingError("source.pace", pace, 'must be "realtime" or "fast"')
-        loop = options.get("loop", False)
-        if not isinstance(loop, bool):
-            raise SettingError("source.loop", loop, "must be true or false")
+        try:
+            pace = fields.choice(options.get("pace", "realtime"), "pace", ("realtime", "fast"))
+            loop = fields.boolean(options.get("loop", False), "loop")
+        except SettingError as e:
+            raise e.within("source") from None
         return cls(path, pace, loop, block)
 
     @classmethod

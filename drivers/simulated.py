@@ -47,6 +47,7 @@ import threading
 
 import numpy as np
 
+from livefilt import fields
 from livefilt.errors import SettingError
 from livefilt.acquire.source import DeviceInfo, Pacer, Source
 
@@ -156,26 +157,22 @@ class SimulatedSource(Source):
     @classmethod
     def from_settings(cls, options, rate_hz, block):
         cls.check_unknown(options, cls.options)
-        seed = options.get("seed", 7)
-        if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-            raise SettingError("source.seed", seed, "must be a whole number >= 0")
-        pace = options.get("pace", "realtime")
-        if pace not in ("realtime", "fast"):
-            raise SettingError("source.pace", pace, 'must be "realtime" or "fast"')
-        led = options.get("led_hz", 1370.0)
-        if isinstance(led, bool) or not isinstance(led, (int, float)) or not 0 < led < rate_hz / 4:
-            raise SettingError("source.led_hz", led,
-                               f"must be a frequency between 0 and a quarter of the rate ({rate_hz / 4:g} Hz)")
-        mains = options.get("mains_hz", 50.0)
-        if mains not in (50, 60):
-            raise SettingError("source.mains_hz", mains, "must be 50 or 60")
-        target = options.get("target", "canopy")
-        if target not in ("canopy", "leaf"):
-            raise SettingError("source.target", target, 'must be "canopy" or "leaf"')
-        dist = options.get("distance_m")
-        if dist is not None and (isinstance(dist, bool) or not isinstance(dist, (int, float))
-                                 or not 0.05 <= dist <= 100):
-            raise SettingError("source.distance_m", dist, "must be a distance from 0.05 to 100 m")
+        try:
+            seed = fields.integer(options.get("seed", 7), "seed", 0)
+            pace = fields.choice(options.get("pace", "realtime"), "pace", ("realtime", "fast"))
+            led = fields.number(options.get("led_hz", 1370.0), "led_hz", 0, rate_hz / 4,
+                                allowed="must be a frequency between 0 and a quarter of the "
+                                        f"rate ({rate_hz / 4:g} Hz)", inclusive=False)
+            mains = options.get("mains_hz", 50.0)
+            if isinstance(mains, bool) or mains not in (50, 60):
+                raise SettingError("mains_hz", mains, "must be 50 or 60")
+            target = fields.choice(options.get("target", "canopy"), "target", ("canopy", "leaf"))
+            dist = options.get("distance_m")
+            if dist is not None:
+                dist = fields.number(dist, "distance_m", 0.05, 100,
+                                     allowed="must be a distance from 0.05 to 100 m")
+        except SettingError as e:
+            raise e.within("source") from None
         src = cls(rate_hz, seed, pace, float(led), float(mains), target,
                   None if dist is None else float(dist))
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)

@@ -33,13 +33,18 @@ import time
 from importlib import metadata
 from typing import Any, ClassVar
 
+from livefilt import fields
 from livefilt.errors import SettingError, SourceUnavailable
 
-__all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
+__all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP",
+           "SOURCE_KEYS"]
 
 log = logging.getLogger(__name__)
 
 ENTRY_POINT_GROUP = "livefilt.drivers"
+
+#: Keys every ``[source]`` table takes, whatever the driver.
+SOURCE_KEYS = ("driver", "rate_hz", "block")
 
 
 class DeviceInfo(dict):
@@ -131,14 +136,12 @@ class Source:
         """Live counters for the read-out (overflows, CRC errors, state)."""
         return {}
 
-    @staticmethod
-    def check_unknown(options: dict[str, Any], known) -> None:
-        """Refuse keys a driver does not know (one validation path, as pyserial does)."""
-        for key in options:
-            if key not in known:
-                raise SettingError(key, options[key],
-                                   "unknown option for this driver; known: "
-                                   + ", ".join(sorted(known)))
+    @classmethod
+    def check_unknown(cls, options: dict[str, Any], known) -> None:
+        """Refuse keys the ``[source]`` table does not take, listing every key it
+        takes: the common ones (:data:`SOURCE_KEYS`) and this driver's."""
+        what = f'a [source] table with driver = "{cls.driver}"' if cls.driver else "[source]"
+        fields.check_keys(options, SOURCE_KEYS + tuple(sorted(known)), what)
 
 
 class Pacer:

@@ -324,7 +324,7 @@ def test_specs_round_trip_and_defaults():
 
 
 @pytest.mark.parametrize("table,field,match", [
-    ({"frequency_hz": 1370, "colour": 1}, "colour", "unknown key; known: frequency_hz"),
+    ({"frequency_hz": 1370, "colour": 1}, "colour", "unknown key; a \\[reference\\] table takes: frequency_hz"),
     ({"frequency_hz": "fast"}, "frequency_hz", "must be a finite number"),
     ({"frequency_hz": True}, "frequency_hz", "must be a finite number"),
     ({"frequency_hz": 0}, "frequency_hz", "above 0 and below Nyquist, 24000 Hz"),
@@ -349,7 +349,7 @@ def test_reference_setting_errors(table, field, match):
 
 
 @pytest.mark.parametrize("table,field,match", [
-    ({"time_constant_s": 0.1, "order": 2}, "order", "unknown key; known: type"),
+    ({"time_constant_s": 0.1, "order": 2}, "order", "unknown key; a detector takes: type"),
     ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin" or "rms"'),
     ({"type": "rms"}, "time_constant_s", "is required"),
     ({"time_constant_s": "slow"}, "time_constant_s", "must be a finite number"),
