@@ -23,14 +23,16 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Mapping
 
+import tomli_w
+
 from livefilt import fields
 from livefilt.dsp.design import StageSpec
 from livefilt.dsp.detect import DetectorSpec, ReferenceSpec
 from livefilt.errors import SettingError
-from livefilt.tomlout import dumps
 
 __all__ = ["Settings", "SourceSettings", "ChainSettings", "OutputSettings",
-           "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS"]
+           "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS",
+           "toml_text"]
 
 #: Upper bound used for channel checks before the source is open; the engine
 #: re-checks against the real channel count.
@@ -101,7 +103,7 @@ class Settings:
 
     def to_toml(self, header: str = "") -> str:
         """TOML text that :func:`parse_config` reads back to equal settings."""
-        return dumps(self.to_mapping(), header=header)
+        return toml_text(self.to_mapping(), header=header)
 
     def at_rate(self, rate_hz: float, channels: int = MAX_CHANNELS) -> "Settings":
         """Re-validate every rate-dependent value at ``rate_hz`` (a source that
@@ -114,6 +116,29 @@ class Settings:
         chains = list(self.chains)
         chains[index] = chain
         return replace(self, chains=tuple(chains))
+
+
+def toml_text(doc: Mapping, header: str = "") -> str:
+    """``doc`` as TOML text (tomli-w), ``header`` lines first as comments.
+
+    ``None`` values are left out and numpy scalars become Python numbers, so
+    a settings mapping, run.toml or a report's results can go in as they are.
+    Floats are written as their shortest round-trip ``repr``.
+    """
+    lines = "".join(f"# {h}\n".replace("# \n", "#\n") for h in header.splitlines())
+    return lines + tomli_w.dumps(_plain(doc))
+
+
+def _plain(v: Any) -> Any:
+    if isinstance(v, Mapping):
+        return {str(k): _plain(x) for k, x in v.items() if x is not None}
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v if x is not None]
+    if hasattr(v, "item") and not isinstance(v, (str, bytes)):
+        return _plain(v.item())
+    if isinstance(v, Path):
+        return str(v)
+    return v
 
 
 def _num(x: float) -> float | int:

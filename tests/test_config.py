@@ -78,7 +78,7 @@ def test_at_rate_rechecks_against_the_new_nyquist():
 def test_cli_reports_one_line_and_exit_2(tmp_path):
     d = demo_doc()
     d["chains"][0]["stages"][0]["cutoff_hz"] = 30000
-    from livefilt.tomlout import dumps
+    from livefilt.config import toml_text as dumps
     p = tmp_path / "bad.toml"
     p.write_text(dumps(d))
     r = subprocess.run([sys.executable, "-m", "livefilt", "run", "--config", str(p), "--duration", "0.1"],

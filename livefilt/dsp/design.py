@@ -206,12 +206,15 @@ class StageSpec:
         stage_sos(spec, fs)  # the checks that need the design itself
         return spec
 
-    def to_mapping(self) -> dict[str, Any]:
-        """The minimal TOML table for this stage (defaults left out)."""
+    def to_mapping(self, full: bool = True) -> dict[str, Any]:
+        """The TOML table for this stage: every key that applies, defaults
+        included (so a later version with other defaults designs the same
+        stage), or with ``full=False`` the minimal table (defaults left out)."""
         out: dict[str, Any] = {}
         for f in _dataclass_fields(self):
             value = getattr(self, f.name)
-            if value is None or (f.name in _DEFAULTS and value == _DEFAULTS[f.name]):
+            if value is None or (not full and f.name in _DEFAULTS
+                                 and value == _DEFAULTS[f.name]):
                 continue
             out[f.name] = list(value) if isinstance(value, tuple) else value
         return out

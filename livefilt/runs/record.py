@@ -33,7 +33,7 @@ import numpy as np
 
 from livefilt import __version__
 from livefilt.errors import RecordingError
-from livefilt.tomlout import dumps
+from livefilt.config import toml_text
 from livefilt.runs.wavio import WavWriter, read_wav
 
 __all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
@@ -160,7 +160,7 @@ class RunWriter:
         doc = {"run": run, "source_info": _plain(self.source_info),
                "counts": _plain(self.counts), "config": self.config,
                "markers": self.markers}
-        text = dumps(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
+        text = toml_text(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
                                  "results.csv the detector rows.")
         tmp = self.folder / "run.toml.tmp"
         tmp.write_text(text, encoding="utf-8")

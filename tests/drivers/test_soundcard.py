@@ -23,7 +23,7 @@ from livefilt.drivers.soundcard import SoundCardSource
 from livefilt.errors import SettingError, SourceError
 from livefilt.acquire.ring import Block, Ring
 from livefilt.acquire.source import load_driver
-from livefilt.tomlout import dumps
+from livefilt.config import toml_text as dumps
 
 from tests.system import require
 
