@@ -1,6 +1,8 @@
-"""Replay a recording: WAV files (int16, int24, int32, float32/64; any rate and
-channel count; RF64) or a livefilt run folder (its raw.wav, with the channel
-names, units and reference of the original run).
+"""Replay a recording: any file soundfile reads (WAV int8..32 and float, RF64,
+W64, FLAC, AIFF; any rate and channel count) or a livefilt run folder (its
+raw.wav, with the channel names, units and reference of the original run).
+What is wrong with a damaged file is said once, in one line (see
+:mod:`livefilt.runs.wavio`); a file with no frames is an error.
 
 Options (``[source]`` table, or ``livefilt run --input PATH [--fast]``)
 -----------------------------------------------------------------------
@@ -14,6 +16,7 @@ loop : bool, default false
 
 from __future__ import annotations
 
+import hashlib
 import threading
 import tomllib
 from pathlib import Path
@@ -25,7 +28,7 @@ from livefilt.runs.wavio import WavReader
 
 __all__ = ["FileSource"]
 
-_PIECE = 4096
+_PIECE = 16384
 
 
 class FileSource(Source):
@@ -97,6 +100,9 @@ class FileSource(Source):
                                    "phase_deg": ref.get("phase_deg", 0.0)}
         self.device = f"{p} ({r.sample_format}, {r.channels} ch, {r.rate_hz:g} Hz, {r.frames / r.rate_hz:.1f} s)"
         self.frames_total = r.frames
+        self.resolution_bits = r.bits
+        self._wav = Path(wav).resolve()
+        self.notes = list(r.notes)
 
     def start(self, ring) -> None:
         self._stop.clear()
@@ -133,6 +139,21 @@ class FileSource(Source):
         return {"position_s": (r.position / r.rate_hz) if r else 0.0}
 
     def info(self):
+        """Also the input itself: absolute path, size and SHA-256 (so a result can
+        be traced to the exact bytes it came from), and what was wrong with it."""
         d = super().info()
-        d["path"] = str(self.path)
+        d["path"] = str(self.path.resolve())
+        wav = getattr(self, "_wav", None)
+        if wav is not None:
+            d["input"] = {"path": str(wav), "bytes": wav.stat().st_size, "sha256": _sha256(wav)}
+            if self.notes:
+                d["input"]["notes"] = list(self.notes)
         return d
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
