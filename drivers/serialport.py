@@ -176,6 +176,7 @@ class SerialSource(Source):
             self.channel_names.append("led")
         self.channels = len(self.channel_names)
         self.units = "V"
+        self.resolution_bits = desc.adc_bits
         self.device = (f"{desc.name or 'board'} on {self.port}: {desc.channels} x "
                        f"{desc.adc_bits}-bit at {desc.rate_hz:g} Hz, reference {desc.vref_v:g} V")
         self.reference_hint = ({"frequency_hz": desc.modulation_hz}
@@ -219,6 +220,19 @@ class SerialSource(Source):
             "last_seq": p.last_seq if p else None,
             "last_problem": self._last_problem,
         }
+
+    def clip_levels(self):
+        """Framed: a unipolar ADC, at full scale on code 0 or the top code
+        ``(2**bits - 1) / 2**bits * vref`` (to_frames' transfer); the LED column
+        never clips.  Text: +-full scale."""
+        d = getattr(self, "description", None)
+        if self.format != "framed" or d is None:
+            return super().clip_levels()
+        lo = np.zeros(self.channels)
+        hi = np.full(self.channels, d.vref_v * ((1 << d.adc_bits) - 1) / (1 << d.adc_bits))
+        if d.led_channel is not None:
+            lo[-1], hi[-1] = -np.inf, np.inf
+        return lo, hi
 
     def info(self) -> dict[str, Any]:
         """run.toml facts: the base facts, port settings, the board's description

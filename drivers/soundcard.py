@@ -264,6 +264,7 @@ class SoundCardSource(Source):
         self.channel_names = [f"in{c}" for c in self.input_channels] + (
             ["reference"] if reference_channel is not None else [])
         self.units = "V" if volts_full_scale is not None else "FS"
+        self.full_scale = volts_full_scale if volts_full_scale is not None else 1.0
         self.device = "" if device is None else str(device)
         self.reference_hint = None
         #: Output-to-input delay in whole frames (None until measured).
@@ -425,6 +426,13 @@ class SoundCardSource(Source):
         except Exception as exc:  # a device that vanished: nothing left to release
             log.warning("closing %s: %s", self.device, exc)
         self._state = "stopped"
+
+    def clip_levels(self):
+        """+-full scale, the positive side at a 16-bit converter's top code
+        (32767/32768): PortAudio hands over float32 whatever the converter's
+        depth, and that code is as far as a 16-bit card goes (common practice)."""
+        lo, hi = super().clip_levels()
+        return lo, hi * (1.0 - 2.0 ** -15)
 
     def info(self) -> dict[str, Any]:
         """Facts for run.toml (no None values: TOML has no null)."""

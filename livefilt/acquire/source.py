@@ -33,6 +33,8 @@ import time
 from importlib import metadata
 from typing import Any, ClassVar
 
+import numpy as np
+
 from livefilt import fields
 from livefilt.errors import SettingError, SourceUnavailable
 
@@ -80,6 +82,10 @@ class Source:
     reference_hint : dict or None
         What the source knows about the modulation (``frequency_hz``,
         ``phase_deg``), e.g. from a firmware's self-description.
+    full_scale : float
+        The sample value of full scale in ``units`` (1.0 for FS).
+    resolution_bits : int or None
+        Bits per sample of an integer digitizer or file (None: float or unknown).
     """
 
     driver: ClassVar[str] = ""
@@ -92,6 +98,8 @@ class Source:
     device: str = ""
     realtime: bool = True
     reference_hint: dict | None = None
+    full_scale: float = 1.0
+    resolution_bits: int | None = None
 
     # -- construction --------------------------------------------------
     @classmethod
@@ -135,6 +143,17 @@ class Source:
     def status(self) -> dict[str, Any]:
         """Live counters for the read-out (overflows, CRC errors, state)."""
         return {}
+
+    def clip_levels(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per channel (low, high): a sample at or beyond either is at full scale.
+
+        Default: +-``full_scale``; for an N-bit integer source the top code,
+        ``full_scale * (1 - 2**(1 - N))`` (int16 32767 reads 0.99997 FS).
+        """
+        fs = float(self.full_scale)
+        bits = self.resolution_bits
+        top = fs * (1.0 - 2.0 ** (1 - bits)) if bits else fs
+        return np.full(self.channels, -fs), np.full(self.channels, top)
 
     @classmethod
     def check_unknown(cls, options: dict[str, Any], known) -> None:
