@@ -48,7 +48,11 @@ def cmd_run(args) -> int:
     settings = _settings(args)
     engine = Engine(settings)
     if args.out:
-        rec = engine.start_recording(args.out)
+        try:
+            rec = engine.start_recording(args.out)
+        except BaseException:
+            engine.stop()  # the source is open: close it before the one-line error
+            raise
         print(f"recording to {rec.folder}", file=sys.stderr)
     readout = Readout(engine)
     period = 0.25 if readout.tty else 1.0
@@ -65,7 +69,7 @@ def cmd_run(args) -> int:
         raise engine.error
     if args.out and engine.stats.frames:
         print(f"saved {engine.stats.frames} frames ({engine.stats.frames / engine.rate_hz:.2f} s) "
-              f"to {args.out}", file=sys.stderr)
+              f"to {rec.folder}", file=sys.stderr)
     return 0
 
 

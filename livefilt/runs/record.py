@@ -36,10 +36,14 @@ from livefilt.errors import RecordingError
 from livefilt.config import toml_text
 from livefilt.runs.wavio import WavWriter, read_wav
 
-__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
+__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "FLAG_COLUMNS", "new_run_folder",
+           "make_marker"]
 
 RESULT_COLUMNS = ("time_s", "chain", "amplitude", "phase_deg", "in_phase", "quadrature",
                   "noise", "snr_db", "ref_hz", "locked", "sample_index")
+#: Input flags per row: samples of the chain's input in the row's output
+#: interval that were non-finite (replaced) or at/beyond full scale.
+FLAG_COLUMNS = ("nonfinite", "clipped")
 
 
 def _utc_now() -> datetime:
@@ -49,6 +53,9 @@ def _utc_now() -> datetime:
 def new_run_folder(parent, label: str = "") -> Path:
     """A fresh folder ``parent/run-YYYYmmdd-HHMMSS[-label]`` (suffixed if taken)."""
     parent = Path(parent)
+    if parent.exists() and not parent.is_dir():
+        raise RecordingError(f"{parent}: is a file, not a folder; --out takes a folder "
+                             "(a new run folder is made inside it)")
     try:
         parent.mkdir(parents=True, exist_ok=True)
     except OSError as e:
@@ -58,7 +65,11 @@ def new_run_folder(parent, label: str = "") -> Path:
     while path.exists():
         k += 1
         path = parent / f"{stem}-{k}"
-    path.mkdir()
+    try:
+        path.mkdir()
+    except OSError as e:
+        raise RecordingError(f"{parent}: cannot make a run folder in it ({e.strerror}); "
+                             "choose a folder you can write with --out") from None
     return path
 
 
@@ -88,7 +99,7 @@ class RunWriter:
         except OSError as e:
             raise RecordingError(f"{self.folder}: cannot write the run ({e.strerror})") from None
         self._csv = csv.writer(self._csv_file)
-        self._csv.writerow(RESULT_COLUMNS)
+        self._csv.writerow(RESULT_COLUMNS + FLAG_COLUMNS)
         self.rate_hz = rate_hz
         self.config = tomllib.loads(config_toml)
         self.source_info = dict(source_info)
@@ -96,6 +107,9 @@ class RunWriter:
         self.stopped: datetime | None = None
         self.markers: list[dict] = []
         self.counts: dict[str, Any] = {}
+        self.source_state: dict[str, Any] = {}
+        #: Called at each flush for (counts, source state), so run.toml stays current.
+        self.refresh = None
         self.rows = 0
         self._since_flush = 0
         self._write_meta()
@@ -108,13 +122,15 @@ class RunWriter:
         if self._since_flush >= self.rate_hz * self.FLUSH_EVERY_S:
             self.flush()
 
-    def write_rows(self, chain: str, rows: np.ndarray) -> None:
-        """Append detector rows (structured array with READING_DTYPE fields)."""
+    def write_rows(self, chain: str, rows: np.ndarray, flags=None) -> None:
+        """Append detector rows (structured array with READING_DTYPE fields) and
+        their input flags (``(nonfinite, clipped)`` counts per row, or None)."""
         w, fs = self._csv.writerow, self.rate_hz
-        for r in rows:
+        nonfinite, clipped = flags if flags is not None else ((0,) * len(rows),) * 2
+        for r, nf, cl in zip(rows, nonfinite, clipped):
             w((f"{r['index'] / fs:.6f}", chain, _g(r["amplitude"]), _g(r["phase_deg"]),
                _g(r["in_phase"]), _g(r["quadrature"]), _g(r["noise"]), _g(r["snr_db"]),
-               _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"])))
+               _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"]), int(nf), int(cl)))
         self.rows += len(rows)
 
     def add_marker(self, time_s: float, distance_m: float | None, note: str = "") -> dict:
@@ -125,14 +141,24 @@ class RunWriter:
         return m
 
     def flush(self) -> None:
+        """Push samples and rows to disk, then run.toml with the frame count the
+        WAV header now holds (and the current counts), so a killed run's record
+        matches its file."""
         self._wav.flush()
         self._csv_file.flush()
         self._since_flush = 0
+        if self.refresh is not None:
+            counts, state = self.refresh()
+            self.counts.update(counts)
+            self.source_state.update(state)
+        self._write_meta()
 
-    def close(self, counts: dict | None = None) -> None:
+    def close(self, counts: dict | None = None, source_state: dict | None = None) -> None:
         """Close the files and write the final run.toml with ``counts``."""
         if counts:
             self.counts.update(counts)
+        if source_state:
+            self.source_state.update(source_state)
         self.stopped = _utc_now()
         self._wav.close()
         self._csv_file.close()
@@ -158,6 +184,7 @@ class RunWriter:
             run["stopped_utc"] = self.stopped.isoformat(timespec="seconds")
             run["duration_s"] = round(self._wav.frames / self.rate_hz, 6)
         doc = {"run": run, "source_info": _plain(self.source_info),
+               "source_status": _plain(self.source_state),
                "counts": _plain(self.counts), "config": self.config,
                "markers": self.markers}
         text = toml_text(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
@@ -236,11 +263,11 @@ def read_run(folder, raw: bool = True) -> Run:
 
 def _read_results(path: Path) -> dict[str, np.ndarray]:
     if not path.is_file():
-        return {c: np.zeros(0) for c in RESULT_COLUMNS}
+        return {c: np.zeros(0) for c in RESULT_COLUMNS + FLAG_COLUMNS}
     text = path.read_text(encoding="utf-8")
     rows = list(csv.reader(io.StringIO(text)))
     if not rows:
-        return {c: np.zeros(0) for c in RESULT_COLUMNS}
+        return {c: np.zeros(0) for c in RESULT_COLUMNS + FLAG_COLUMNS}
     header, body = rows[0], [r for r in rows[1:] if len(r) == len(rows[0])]
     out = {}
     for j, name in enumerate(header):

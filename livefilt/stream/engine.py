@@ -32,6 +32,7 @@ from livefilt.config import ChainSettings, Settings, parse_chain
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
+from livefilt.acquire.guard import InputGuard
 from livefilt.acquire.ring import Ring
 from livefilt.dsp.sections import FilterBank
 from livefilt.acquire.source import Source, load_driver
@@ -93,8 +94,10 @@ class Engine:
         src = self.source
         self.rate_hz = float(src.rate_hz)
         if abs(self.rate_hz - settings.source.rate_hz) > 1e-9:
-            log.info("source runs at %g Hz (config said %g Hz): settings re-checked at the source's rate",
-                     self.rate_hz, settings.source.rate_hz)
+            log.warning("using %g Hz, the rate the %s source runs at (the config says %g Hz, "
+                        "but a %s sets its own rate); settings re-checked at %g Hz",
+                        self.rate_hz, src.driver, settings.source.rate_hz,
+                        "recording" if src.driver == "file" else "device", self.rate_hz)
         self.settings = settings.at_rate(self.rate_hz, channels=src.channels)
         self.reference = self.settings.reference
         self._reference_changed = False
@@ -106,6 +109,10 @@ class Engine:
         self.batch = max(1, int(batch))
         self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))
         self.chains = [self._make_chain(c, i) for i, c in enumerate(self.settings.chains)]
+        low, high = src.clip_levels()
+        unwatched = [j for j in range(src.channels) if j not in {c.channel for c in self.chains}]
+        low[unwatched], high[unwatched] = -np.inf, np.inf  # clipping counts on detector inputs
+        self.guard = InputGuard(low, high, self.output_every, src.channel_names)
         self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
         n_max = self.block * self.batch
         # every chain's filter in one compiled call per block (FilterBank)
@@ -209,22 +216,37 @@ class Engine:
             info["start_index"] = self.stats.index
             self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
                                       self.rate_hz, self.source.channels)
+            self.recorder.refresh = lambda: (self.counts(), self.source_state())
             return self.recorder
 
     def stop_recording(self) -> RunWriter | None:
         with self._rec_lock:
             rec, self.recorder = self.recorder, None
         if rec is not None:
-            rec.close(self.counts())
+            rec.close(self.counts(), self.source_state())
         return rec
 
+    #: Counts run.toml always holds (zero included), whatever the source.
+    SOURCE_COUNTS = {"crc_errors": "crc_errors", "sequence_gaps": "seq_gaps"}
+
     def counts(self) -> dict:
+        """Every count for run.toml and the read-out, zero included; the source's
+        other whole-number counters follow as ``source_<name>``."""
         st = self.stats
+        status = self.source.status()
         d = {"frames_processed": st.frames, "dropped_frames": st.dropped,
-             "ring_overruns": st.overruns, "device_events": st.device_events}
-        d.update({f"source_{k}": v for k, v in self.source.status().items()
-                  if isinstance(v, (int, float, str, bool))})
+             "ring_overruns": st.overruns, "device_events": st.device_events,
+             **self.guard.counts()}
+        d.update({k: int(status.get(v) or 0) for k, v in self.SOURCE_COUNTS.items()})
+        used = set(self.SOURCE_COUNTS.values())
+        d.update({f"source_{k}": v for k, v in status.items()
+                  if k not in used and isinstance(v, int) and not isinstance(v, bool)})
         return d
+
+    def source_state(self) -> dict:
+        """The source's status values that are not counts (state, distance, position)."""
+        return {k: v for k, v in self.source.status().items()
+                if isinstance(v, (float, str, bool)) and v != ""}
 
     # -- running ---------------------------------------------------------
     def start(self, duration_s: float | None = None) -> None:
@@ -277,6 +299,16 @@ class Engine:
             self._shutdown()
             self.finished.set()
 
+    def _write_rows(self, rec, rows_all) -> None:
+        """Rows in time order, chains interleaved (every chain's rows fall on the
+        same sample indices), with their input flags."""
+        flags = [self.guard.row_flags(c.channel, rows["index"])
+                 for c, rows in zip(self.chains, rows_all)]
+        for i in range(max((len(r) for r in rows_all), default=0)):
+            for c, rows, (nf, cl) in zip(self.chains, rows_all, flags):
+                if i < len(rows):
+                    rec.write_rows(c.name, rows[i:i + 1], (nf[i:i + 1], cl[i:i + 1]))
+
     def step(self, timeout: float = 0.2) -> bool:
         """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
         want = self.block * self.batch
@@ -309,10 +341,11 @@ class Engine:
                 c.note_gap(blk.dropped)
             for kind, lost, note in blk.gaps:
                 log.warning("%s: %d frames lost at sample %d (%s)", kind, lost, blk.start_index, note)
-        n, data, start = blk.frames, blk.data, blk.start_index
+        n, raw, start = blk.frames, blk.data, blk.start_index
         if self._stop_at is not None and start + n > self._stop_at:
             n = max(0, self._stop_at - start)
-            data = data[:n]
+            raw = raw[:n]
+        data = self.guard.check(raw, start)  # NaN/Inf held out of every filter; clipping counted
         nch = data.shape[1]
         if not self._settled and n:
             # Start as an instrument that has been on for a while: each chain's
@@ -342,10 +375,8 @@ class Engine:
         if rec is not None:
             with self._rec_lock:
                 if self.recorder is not None:
-                    rec.write_block(data)
-                    for c, rows in zip(self.chains, rows_all):
-                        if len(rows):
-                            rec.write_rows(c.name, rows)
+                    rec.write_block(raw)  # as acquired
+                    self._write_rows(rec, rows_all)
         for fn in self.listeners:
             fn(self, start, data, self._y[:, :n], rows_all)
         st.busy_s += time.perf_counter() - t0
