@@ -18,10 +18,13 @@ The clean path costs two reductions per block (min and max per channel).
 from __future__ import annotations
 
 import logging
+import math
 
 import numpy as np
 
-__all__ = ["InputGuard"]
+from livefilt.units import si
+
+__all__ = ["InputGuard", "resolution_limit"]
 
 log = logging.getLogger(__name__)
 
@@ -135,3 +138,20 @@ class InputGuard:
         """Totals over every channel (run.toml, the read-out)."""
         return {"nonfinite_samples": int(self.nonfinite.sum()),
                 "clipped_samples": int(self.clipped.sum())}
+
+
+def resolution_limit(bits: int, full_scale: float, units: str, amplitude: float) -> str | None:
+    """Why an N-bit input limits a detector's reading, or None when it does not.
+
+    One quantization step of a bipolar N-bit input is ``2 FS / 2**N``; the
+    best a full-scale sine can reach is IEEE Std 1241's ideal SINAD,
+    6.02 N + 1.76 dB.  A signal below one step is not resolved (without dither
+    a quantizer is not linear there): the reading is set by the bits.
+    """
+    step = 2.0 * full_scale / 2.0 ** bits
+    if not amplitude < step:
+        return None
+    return (f"the input is {bits}-bit, one step is {si(step, units)} (ideal SINAD "
+            f"{6.02 * bits + 1.76:.1f} dB, IEEE Std 1241: 6.02 N + 1.76 dB): the signal, "
+            f"{si(amplitude, units)}, is below one step, so quantization sets this reading; "
+            "record with more bits or more gain before the digitizer")

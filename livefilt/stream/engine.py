@@ -32,7 +32,7 @@ from livefilt.config import ChainSettings, Settings, parse_chain
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
-from livefilt.acquire.guard import InputGuard
+from livefilt.acquire.guard import InputGuard, resolution_limit
 from livefilt.acquire.ring import Ring
 from livefilt.dsp.sections import FilterBank
 from livefilt.acquire.source import Source, load_driver
@@ -113,6 +113,7 @@ class Engine:
         unwatched = [j for j in range(src.channels) if j not in {c.channel for c in self.chains}]
         low[unwatched], high[unwatched] = -np.inf, np.inf  # clipping counts on detector inputs
         self.guard = InputGuard(low, high, self.output_every, src.channel_names)
+        self._bits_unchecked = bool(src.resolution_bits)  # warn once if the bits limit a result
         self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
         n_max = self.block * self.batch
         # every chain's filter in one compiled call per block (FilterBank)
@@ -126,6 +127,7 @@ class Engine:
                            [c.name for c in self.chains], tap_seconds)
         self.stats = EngineStats()
         self.latest: dict[str, np.void] = {}
+        self.resolution_note = ""
         self.recorder: RunWriter | None = None
         self.listeners: list = []  # callables (engine, start_index, raw, outputs, rows)
         self._pending: list[tuple[int, ChainSettings]] = []
@@ -299,6 +301,22 @@ class Engine:
             self._shutdown()
             self.finished.set()
 
+    def _check_resolution(self, rows_all) -> None:
+        """Say once when an integer input's resolution limits a chain's reading
+        (:func:`~livefilt.acquire.guard.resolution_limit`), at its first settled row."""
+        for c, rows in zip(self.chains, rows_all):
+            settled = rows[np.isfinite(rows["noise"])] if len(rows) else rows
+            if not len(settled):
+                continue
+            r = settled[-1]
+            why = resolution_limit(self.source.resolution_bits, self.source.full_scale,
+                                   self.source.units, float(r["amplitude"]))
+            self._bits_unchecked = False
+            if why:
+                log.warning("chain %s: %s", c.name, why)
+                self.resolution_note = f"chain {c.name}: {why}"
+                return
+
     def _write_rows(self, rec, rows_all) -> None:
         """Rows in time order, chains interleaved (every chain's rows fall on the
         same sample indices), with their input flags."""
@@ -364,6 +382,8 @@ class Engine:
                 self.latest[c.name] = rows[-1]
         st.frames += n
         st.index = start + n
+        if self._bits_unchecked:
+            self._check_resolution(rows_all)
         if self.tap is not None:
             s = self._streams[:, :n]
             s[:nch] = data.T
