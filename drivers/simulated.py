@@ -254,6 +254,10 @@ class SimulatedSource(Source):
     def distance_now(self) -> float:
         return float(self.scene.distance(self._index / self.rate_hz))
 
+    def distance_at(self, index: int) -> float:
+        """The target's distance at acquisition sample ``index``, m."""
+        return float(self.scene.distance(index / self.rate_hz))
+
     # -- running -------------------------------------------------------
     def start(self, ring) -> None:
         self._stop.clear()

@@ -84,7 +84,9 @@ def _has_display() -> bool:
 def cmd_live(args) -> int:
     if not _has_display() and not args.screenshot:
         print("livefilt: no display found (DISPLAY/WAYLAND_DISPLAY unset): showing the terminal "
-              "read-out instead", file=sys.stderr)
+              "read-out instead; " + ("it stops after --duration or on Ctrl-C" if args.duration
+                                      else "press Ctrl-C to stop (or give --duration S)"),
+              file=sys.stderr)
         return cmd_run(args)
     if args.screenshot and not _has_display():
         os.environ["QT_QPA_PLATFORM"] = "offscreen"

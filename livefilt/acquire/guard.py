@@ -70,7 +70,7 @@ class InputGuard:
         if suspect.any():
             data = self._slow(data, start, np.flatnonzero(suspect))
         self._last[:] = data[-1]
-        self._prune(start + n)
+        self._prune(start)
         return data
 
     def _slow(self, data: np.ndarray, start: int, channels) -> np.ndarray:
@@ -113,8 +113,8 @@ class InputGuard:
             self._warned.add((kind, j))
             log.warning(text.format(at))
 
-    def _prune(self, end: int) -> None:
-        keep_from = end - 2 * self.interval
+    def _prune(self, start: int) -> None:
+        keep_from = start - self.interval  # rows of this block start after start - interval
         for j, (idx, kind) in enumerate(self._recent):
             if idx.size and idx[0] < keep_from:
                 k = np.searchsorted(idx, keep_from)
@@ -122,7 +122,7 @@ class InputGuard:
 
     def row_flags(self, channel: int, index: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Non-finite and clipped sample counts of ``channel`` in each row's interval
-        ``(index - interval, index]``."""
+        ``(index - interval, index]``, for rows of the block last checked."""
         idx, kind = self._recent[channel]
         index = np.asarray(index, dtype=np.int64)
         if idx.size == 0:

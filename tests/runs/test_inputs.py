@@ -125,7 +125,7 @@ def test_the_cli_says_it_once_and_uses_the_frames(tmp_path):
                        capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
     assert r.stderr.count("header promises 2.00 s, file holds 1.00 s; using 1.00 s") == 1
-    assert "t=   1.00 s" in r.stdout
+    assert len(r.stdout.splitlines()) == 20  # one line per 0.05 s output interval of 1.00 s
 
 
 def test_killed_run_is_recovered_and_replayed(tmp_path):
@@ -162,7 +162,7 @@ def test_killed_run_is_recovered_and_replayed(tmp_path):
     r = subprocess.run([sys.executable, "-m", "livefilt", "run", "--input", str(folder), "--fast"],
                        capture_output=True, text=True, timeout=120)
     assert r.returncode == 0 and "a recording that was never closed" in r.stderr, r.stderr
-    assert f"t={whole / 48000:7.2f} s" in r.stdout
+    assert len(r.stdout.splitlines()) == (whole - 1) // 2400 + 1  # a line per row: every frame used
 
 
 @pytest.mark.parametrize("kind", ["riff", "fmt", "data", "truncated"])
