@@ -181,3 +181,54 @@ def test_mangled_headers_give_one_line(tmp_path, kind):
         WavReader(p)
     msg = str(info.value)
     assert msg.startswith(f"{p}: ") and "\n" not in msg
+
+
+# -- fuzzing the reader: mutated WAV headers ------------------------------------------
+from hypothesis import given, strategies as st  # noqa: E402
+
+from tests.fuzzing import examples  # noqa: E402
+
+
+def _small_wavs():
+    import io
+    out = []
+    for subtype, fmt in (("FLOAT", "WAV"), ("PCM_16", "WAV"), ("PCM_24", "WAVEX"), ("FLOAT", "RF64")):
+        b = io.BytesIO()
+        sf.write(b, _tone(400), FS, subtype=subtype, format=fmt)
+        out.append(b.getvalue())
+    import tempfile
+    with tempfile.TemporaryDirectory() as d:  # our own writer's layout, JUNK and fact chunks
+        w = WavWriter(f"{d}/raw.wav", FS, 2)
+        w.write(_tone(400))
+        w.close()
+        out.append(open(f"{d}/raw.wav", "rb").read())
+    return out
+
+
+SMALL = _small_wavs()
+
+
+@examples(300)
+@given(which=st.integers(0, len(SMALL) - 1),
+       edits=st.lists(st.tuples(st.integers(0, 120), st.integers(0, 255)), min_size=1, max_size=8),
+       cut=st.one_of(st.none(), st.integers(0, 4000)))
+def test_fuzz_mutated_headers_give_one_line_or_a_warning(tmp_path_factory, which, edits, cut):
+    data = bytearray(SMALL[which])
+    for pos, value in edits:
+        if pos < len(data):
+            data[pos] = value
+    if cut is not None:
+        data = data[:cut]
+    p = tmp_path_factory.mktemp("wav") / "m.wav"
+    p.write_bytes(bytes(data))
+    try:
+        r = WavReader(p)
+    except RecordingError as e:
+        assert "\n" not in str(e) and str(e).startswith(str(p))
+        return
+    try:
+        assert all("\n" not in n for n in r.notes)
+        x = r.read(r.frames + 10)
+        assert x.dtype == np.float32 and x.shape[1] == r.channels and x.shape[0] <= r.frames
+    finally:
+        r.close()
