@@ -36,6 +36,13 @@ def _phase(x: float) -> str:
     return "—" if not math.isfinite(x) else f"{x:.1f}°"
 
 
+def _fields(r, units: str) -> tuple[str, ...]:
+    """One row's amplitude, phase, noise, SNR, reference and lock, as shown."""
+    return (si(float(r["amplitude"]), units, DIGITS, True), _phase(float(r["phase_deg"])),
+            si(float(r["noise"]), units, DIGITS, True), _db(float(r["snr_db"])),
+            si(float(r["ref_hz"]), "Hz", 6, True), "yes" if r["locked"] else "NO")
+
+
 def _clock(t: float) -> str:
     m, s = divmod(max(t, 0.0), 60)
     h, m = divmod(int(m), 60)
@@ -109,28 +116,25 @@ class Readout:
             return src.distance_at(index)
         return src.status().get("distance_m")
 
+    def _chains(self, group: dict, shown, missing) -> list[str]:
+        """Each chain's row formatted by ``shown(name, fields)`` (``missing(name)``
+        before its first row), then A − B."""
+        units = self.engine.source.units
+        out = [missing(c.name) if c.name not in group else shown(c.name, _fields(group[c.name], units))
+               for c in self.engine.chains]
+        ab = self._ab(group)
+        return out + ([ab] if ab else [])
+
     def log_line(self, index: int, group: dict, counts: dict | None = None) -> str:
         """One line for the rows of every chain at sample ``index``."""
         e = self.engine
-        units = e.source.units
         parts = [f"t={index / e.rate_hz:9.3f} s"]
         d = self._distance(index)
         if d is not None:
             parts.append(f"d={d:.3f} m")
-        for c in e.chains:
-            r = group.get(c.name)
-            if r is None:
-                parts.append(f"{c.name} —")
-                continue
-            parts.append(f"{c.name} amp {si(float(r['amplitude']), units, DIGITS, True)} "
-                         f"phase {_phase(float(r['phase_deg']))} "
-                         f"noise {si(float(r['noise']), units, DIGITS, True)} "
-                         f"SNR {_db(float(r['snr_db']))} "
-                         f"ref {si(float(r['ref_hz']), 'Hz', 6, True)} "
-                         f"lock {'yes' if r['locked'] else 'NO'}")
-        ab = self._ab(group)
-        if ab:
-            parts.append(ab)
+        parts += self._chains(group, lambda n, f: f"{n} amp {f[0]} phase {f[1]} noise {f[2]} "
+                                                  f"SNR {f[3]} ref {f[4]} lock {f[5]}",
+                              lambda n: f"{n} —")
         parts.append(self._counts(counts))
         return "  |  ".join(parts)
 
@@ -140,7 +144,6 @@ class Readout:
         e = self.engine
         st = e.stats
         src = e.source
-        units = src.units
         index, group, counts = self._current if self._current else (st.index, {}, None)
         d = self._distance(index)
         head = [f"livefilt  {src.driver}: {src.device}",
@@ -150,20 +153,9 @@ class Readout:
                 self._counts(counts)]
         rows = [f"{'chain':<6}{'amplitude (rms)':>17}{'phase':>10}{'noise':>15}{'SNR':>10}"
                 f"{'reference':>15}   lock"]
-        for c in e.chains:
-            r = group.get(c.name)
-            if r is None:
-                rows.append(f"{c.name:<6}{'(settling)':>17}")
-                continue
-            rows.append(f"{c.name:<6}{si(float(r['amplitude']), units, DIGITS, True):>17}"
-                        f"{_phase(float(r['phase_deg'])):>10}"
-                        f"{si(float(r['noise']), units, DIGITS, True):>15}"
-                        f"{_db(float(r['snr_db'])):>10}"
-                        f"{si(float(r['ref_hz']), 'Hz', 6, True):>15}"
-                        f"   {'yes' if r['locked'] else 'NO'}")
-        ab = self._ab(group)
-        if ab:
-            rows.append(ab)
+        rows += self._chains(group, lambda n, f: f"{n:<6}{f[0]:>17}{f[1]:>10}{f[2]:>15}{f[3]:>10}"
+                                                 f"{f[4]:>15}   {f[5]}",
+                             lambda n: f"{n:<6}{'(settling)':>17}")
         if e.recorder is not None:
             rows.append(f"recording to {e.recorder.folder}  ({e.recorder.bytes_written / 1e6:.1f} MB)")
         return head + rows
