@@ -18,7 +18,6 @@ The clean path costs two reductions per block (min and max per channel).
 from __future__ import annotations
 
 import logging
-import math
 
 import numpy as np
 
