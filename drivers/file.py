@@ -62,7 +62,9 @@ class FileSource(Source):
             loop = fields.boolean(options.get("loop", False), "loop")
         except SettingError as e:
             raise e.within("source") from None
-        return cls(path, pace, loop, block)
+        src = cls(path, pace, loop, block)
+        src.resolved = {"path": path, "pace": pace, "loop": loop}
+        return src
 
     @classmethod
     def probe(cls):

@@ -142,8 +142,12 @@ class SerialSource(Source):
         if fmt == "text" and not (isinstance(rate_hz, (int, float)) and rate_hz > 0):
             raise SettingError("rate_hz", rate_hz,
                                'format = "text" needs the board\'s sample rate in Hz, above 0')
-        return cls(port.strip(), baud, fmt, channels, float(full_scale), float(timeout),
+        src = cls(port.strip(), baud, fmt, channels, float(full_scale), float(timeout),
                    rate_hz if fmt == "text" else 0.0)
+        src.resolved = {"port": port.strip(), "baud": baud, "format": fmt}
+        src.resolved.update({"channels": channels, "full_scale": float(full_scale)} if fmt == "text"
+                            else {"describe_timeout_s": float(timeout)})
+        return src
 
     @classmethod
     def probe(cls) -> list[DeviceInfo]:

@@ -176,6 +176,8 @@ class SimulatedSource(Source):
         src = cls(rate_hz, seed, pace, float(led), float(mains), target,
                   None if dist is None else float(dist))
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
+        src.resolved = {"seed": seed, "pace": pace, "led_hz": float(led), "mains_hz": float(mains),
+                        "target": target, "distance_m": None if dist is None else float(dist)}
         return src
 
     @classmethod

@@ -320,7 +320,10 @@ class SoundCardSource(Source):
                 drive = DriveSpec.from_mapping(options["drive"], float(rate_hz))
             except SettingError as exc:
                 raise exc.within("drive") from None
-        return cls(rate_hz, block, device, channels, reference, latency, vfs, drive)
+        src = cls(rate_hz, block, device, channels, reference, latency, vfs, drive)
+        src.resolved = {"device": device, "channels": channels, "reference_channel": reference,
+                        "latency": latency, "volts_full_scale": vfs}
+        return src
 
     @classmethod
     def probe(cls) -> list[DeviceInfo]:

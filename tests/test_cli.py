@@ -221,6 +221,7 @@ def test_run_toml_can_be_trusted_later(tmp_path):
     assert hp == {"type": "highpass", "design": "butterworth", "order": 2, "cutoff_hz": 300.0,
                   "gain_db": 0.0}
     assert meta["config"]["chains"][1]["stages"][-1]["c_farad"] == 2.2e-08
+    assert meta["config"]["source"]["loop"] is False  # the driver's defaults too
     assert "2.2e-08" in text and "2.2000000000000002e-08" not in text
     for k in ("crc_errors", "sequence_gaps", "nonfinite_samples", "clipped_samples",
               "dropped_frames"):

@@ -100,6 +100,9 @@ class Source:
     reference_hint: dict | None = None
     full_scale: float = 1.0
     resolution_bits: int | None = None
+    #: The driver's options as used, defaults filled in (None: unset); run.toml
+    #: saves them so a replay with a later version reads the same.
+    resolved: dict[str, Any] = {}
 
     # -- construction --------------------------------------------------
     @classmethod

@@ -28,7 +28,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from livefilt.stream.chain import Chain
-from livefilt.config import ChainSettings, Settings, parse_chain
+from livefilt.config import ChainSettings, Settings, parse_chain, toml_text
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
@@ -216,7 +216,10 @@ class Engine:
             info = self.source.info()
             info["reference"] = self.reference.to_mapping() if self.reference else None
             info["start_index"] = self.stats.index
-            self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
+            doc = self.current_settings().to_mapping()
+            doc["source"] = {**doc["source"], **{k: v for k, v in self.source.resolved.items()
+                                                 if k not in doc["source"]}}
+            self.recorder = RunWriter(path, toml_text(doc), info,
                                       self.rate_hz, self.source.channels)
             self.recorder.refresh = lambda: (self.counts(), self.source_state())
             return self.recorder
