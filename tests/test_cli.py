@@ -49,6 +49,8 @@ def test_bad_input_gets_one_line_and_status_2(tmp_path):
     ]
     (tmp_path / "junk.wav").write_bytes(b"RIFX1234")
     cases.append((["run", "--input", str(tmp_path / "junk.wav")], "byte 0: not a WAV file"))
+    sw.write(tmp_path / "empty.wav", 48000, np.zeros((0, 2), np.float32))
+    cases.append((["run", "--input", str(tmp_path / "empty.wav")], "empty.wav: holds no audio frames"))
     for args, words in cases:
         r = livefilt(*args)
         assert r.returncode == 2, (args, r.stderr)
