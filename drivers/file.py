@@ -1,6 +1,8 @@
 """Replay a recording: any file soundfile reads (WAV int8..32 and float, RF64,
 W64, FLAC, AIFF; any rate and channel count) or a livefilt run folder (its
-raw.wav, with the channel names, units and reference of the original run).
+raw.wav, with the channel names, units and reference of the original run; its
+distance markers are carried into the new run, and :meth:`FileSource.info`
+names the run replayed: ``replay_of``, ``replay_of_started_utc``).
 What is wrong with a damaged file is said once, in one line (see
 :mod:`livefilt.runs.wavio`); a file with no frames is an error.
 
@@ -23,6 +25,7 @@ from pathlib import Path
 
 from livefilt import fields
 from livefilt.errors import RecordingError, SettingError, SourceError
+from livefilt.threads import Worker
 from livefilt.acquire.source import Pacer, Source
 from livefilt.runs.wavio import WavReader
 
@@ -105,10 +108,20 @@ class FileSource(Source):
         self.resolution_bits = r.bits
         self._wav = Path(wav).resolve()
         self.notes = list(r.notes)
+        self.length_s = None if self.loop else r.frames / r.rate_hz
+        # a replayed run carries its markers and says where it came from
+        self.markers = [{k: m[k] for k in ("time_s", "distance_m", "note") if k in m}
+                        for m in meta.get("markers", []) if isinstance(m, dict) and "time_s" in m]
+        self._replay_of = None
+        if meta:
+            run = meta.get("run", {})
+            self._replay_of = {"replay_of": str(p.resolve()),
+                               "replay_of_started_utc": run.get("started_utc", ""),
+                               "replay_of_markers": len(self.markers)}
 
     def start(self, ring) -> None:
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-file", daemon=True)
+        self._thread = Worker(lambda: self._run(ring), "livefilt-file", on_error=lambda w: ring.close())
         self._thread.start()
 
     def _run(self, ring) -> None:
@@ -145,6 +158,8 @@ class FileSource(Source):
         be traced to the exact bytes it came from), and what was wrong with it."""
         d = super().info()
         d["path"] = str(self.path.resolve())
+        if getattr(self, "_replay_of", None):
+            d.update(self._replay_of)
         wav = getattr(self, "_wav", None)
         if wav is not None:
             d["input"] = {"path": str(wav), "bytes": wav.stat().st_size, "sha256": _sha256(wav)}

@@ -73,6 +73,8 @@ class Readout:
         self._lock = threading.Lock()
         self._groups: collections.deque = collections.deque(maxlen=200_000)
         self._current: tuple[int, dict, dict] | None = None
+        self.message = ""  # the last marker echo or hint
+        self._said = ""
         engine.listeners.append(self._take)
 
     # -- rows, grouped by sample index (engine thread) ---------------------
@@ -156,9 +158,32 @@ class Readout:
         rows += self._chains(group, lambda n, f: f"{n:<6}{f[0]:>17}{f[1]:>10}{f[2]:>15}{f[3]:>10}"
                                                  f"{f[4]:>15}   {f[5]}",
                              lambda n: f"{n:<6}{'(settling)':>17}")
-        if e.recorder is not None:
-            rows.append(f"recording to {e.recorder.folder}  ({e.recorder.bytes_written / 1e6:.1f} MB)")
+        rec = e.recorder
+        if rec is not None and rec.failed:
+            rows.append(f"NOT recording: {rec.failed}")
+        elif rec is not None:
+            lost = f", {rec.dropped_frames} frames dropped (disk too slow)" if rec.dropped_frames else ""
+            rows.append(f"recording to {rec.folder}  ({rec.bytes_written / 1e6:.1f} MB{lost})")
+        if self.message:
+            rows.append(self.message)
         return head + rows
+
+    def say(self, text: str) -> None:
+        """Echo a typed marker (or a hint) with the next drawing."""
+        self.message = text
+        if not self.tty:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+            self._said = text
+
+    def typed_line(self) -> None:
+        """The terminal moved down a line when the user pressed Enter."""
+        if self._drawn:
+            self._drawn += 1
+
+    def reset(self) -> None:
+        """Something else was printed: draw the table afresh below it."""
+        self._drawn = 0
 
     def draw(self) -> None:
         if self.tty:

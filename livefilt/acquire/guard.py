@@ -75,13 +75,14 @@ class InputGuard:
         with np.errstate(over="ignore", invalid="ignore"):
             finite = bool(np.isfinite(data.sum()))
         clean = finite
-        if clean and self._watch.size:
-            sub = data if self._watch.size == data.shape[1] else data[:, self._watch]
-            if self._uniform:
-                clean = bool(sub.min() > self._low1 and sub.max() < self._high1)
-            else:
-                clean = bool(np.all(sub.min(axis=0) > self.low[self._watch])
-                             and np.all(sub.max(axis=0) < self.high[self._watch]))
+        if clean and self._uniform and self._watch.size == data.shape[1]:
+            clean = bool(data.min() > self._low1 and data.max() < self._high1)
+        elif clean:  # some channels unwatched: each watched column as a view (no copy)
+            for j in self._watch:
+                col = data[:, j]
+                if not (col.min() > self.low[j] and col.max() < self.high[j]):
+                    clean = False
+                    break
         if not clean:
             data = self._slow(data, start, range(data.shape[1]))
         self._last[:] = data[-1]

@@ -86,6 +86,14 @@ class Source:
         The sample value of full scale in ``units`` (1.0 for FS).
     resolution_bits : int or None
         Bits per sample of an integer digitizer or file (None: float or unknown).
+    markers : list of dict
+        Distance markers the source knows in advance (``time_s`` of its data,
+        ``distance_m`` or none while the target moves, ``note``): a simulated
+        scene's truth, a replayed run's own markers.  The engine adds each one
+        when its time has been processed.
+    length_s : float or None
+        How long the source's data lasts when it ends by itself (a file, a
+        walk-away scene); None for a live device.
     """
 
     driver: ClassVar[str] = ""
@@ -103,6 +111,8 @@ class Source:
     #: The driver's options as used, defaults filled in (None: unset); run.toml
     #: saves them so a replay with a later version reads the same.
     resolved: dict[str, Any] = {}
+    markers: list = []
+    length_s: float | None = None
 
     # -- construction --------------------------------------------------
     @classmethod
