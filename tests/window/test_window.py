@@ -126,8 +126,9 @@ def test_rows_since_never_tears_while_the_engine_writes():
     th = threading.Thread(target=writer)
     th.start()
     try:
-        cursor, reads, t_end = 0, 0, time.monotonic() + 0.7
-        while time.monotonic() < t_end:
+        # until enough reads overlapped the writer (a count, not a time: machines are shared)
+        cursor, reads, t_end = 0, 0, time.monotonic() + 20.0
+        while reads < 50 and time.monotonic() < t_end:
             rows = tap.rows_since("A", cursor)
             if len(rows):
                 assert _whole(rows)  # no row mixed from two writes
