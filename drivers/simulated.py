@@ -152,6 +152,8 @@ class SimulatedSource(Source):
         self._stop = threading.Event()
         self._index = 0  # next frame index handed to the ring (producer thread)
         self._block = 256  # paced hand-over size, a divisor of CHUNK
+        self._noise_power = 0.0  # sum over generated chunks of the white density^2 (V^2/Hz)
+        self._noise_chunks = 0
 
     @classmethod
     def from_settings(cls, options, rate_hz, block):
@@ -245,6 +247,8 @@ class SimulatedSource(Source):
         h1, h3, h5 = sc.hum_v
         v += sn * (h1 + h3 * (3 - 4 * s2) + h5 * (5 - 20 * s2 + 16 * s2 * s2))
         density = sc.noise_density_v(float(i_total.mean()))
+        self._noise_power += density * density
+        self._noise_chunks += 1
         rng = np.random.default_rng([self._seed, start // CHUNK])
         v += rng.standard_normal(n) * (density * np.sqrt(fs / 2))
         q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
@@ -253,6 +257,19 @@ class SimulatedSource(Source):
         out[:, 0] = code * (q / sc.adc_fs_v)
         out[:, 1] = led
         return out
+
+    def expected_noise_fs_per_rthz(self) -> float | None:
+        """The white-noise density this bench put into the chunks made so far,
+        full-scale units per root hertz: the analog noise (rows 7a, 7b and the
+        amplifier) in quadrature with the ADC's quantisation noise, q^2/12
+        spread over 0 to fs/2 (IEEE Std 1241).  What ``livefilt check``
+        should measure as the floor away from lines."""
+        if not self._noise_chunks:
+            return None
+        sc = self.scene
+        q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
+        quant = q * q / 12 / (self.rate_hz / 2)
+        return float(np.sqrt(self._noise_power / self._noise_chunks + quant)) / sc.adc_fs_v
 
     def distance_now(self) -> float:
         return float(self.scene.distance(self._index / self.rate_hz))
