@@ -15,6 +15,8 @@ API map
   source's own status and info).
 - :func:`stream_health`: rate error in ppm with its uncertainty, delivery
   interval and jitter, longest gap, from a :class:`Capture`.
+- :func:`channel_index`, :func:`detector_enbw`: which captured channel the
+  first chain reads, and its detector's ENBW (what a report is about).
 """
 
 from __future__ import annotations
@@ -26,10 +28,12 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from livefilt.acquire.ring import Ring
+from livefilt.dsp.detect import RmsDetector
 from livefilt.errors import SourceError
 from livefilt.progress import progress
 
-__all__ = ["TimedRing", "Capture", "capture", "stream_health", "STALL_S"]
+__all__ = ["TimedRing", "Capture", "capture", "stream_health", "channel_index",
+           "detector_enbw", "STALL_S"]
 
 #: A live source that delivers nothing for this long has stalled (an error, never a hang).
 STALL_S = 5.0
@@ -200,3 +204,19 @@ def stream_health(cap: Capture, skip_s: float = 0.5) -> dict:
     out["rate_ppm"] = float((measured / cap.rate_hz - 1) * 1e6)
     out["rate_ppm_uncertainty"] = float(math.sqrt(2) * sigma / (tt[-1] - tt[0]) * 1e6)
     return out
+
+
+def channel_index(settings, names: list) -> int:
+    """The captured channel the first chain reads (0 when it names none here)."""
+    inp = settings.chains[0].input if settings.chains else 0
+    if isinstance(inp, str):
+        return names.index(inp) if inp in names else 0
+    return inp if 0 <= inp < len(names) else 0
+
+
+def detector_enbw(settings, rate_hz: float) -> float:
+    """ENBW of the first chain's detector output low-pass, Hz (1 Hz when there
+    is no chain); the same closed form the live detector uses."""
+    if not settings.chains:
+        return 1.0
+    return float(RmsDetector(settings.chains[0].detector, rate_hz, 1, exact_path=True).enbw_hz)

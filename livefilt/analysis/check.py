@@ -32,11 +32,11 @@ from pathlib import Path
 
 import numpy as np
 
-from livefilt.analysis.capture import Capture, capture, stream_health
+from livefilt.analysis.linefigure import draw_density
+from livefilt.analysis.capture import Capture, capture, channel_index, detector_enbw, stream_health
 from livefilt.analysis.report import ReportFolder, figure
 from livefilt.config import Settings, demo_config, load_config
 from livefilt.dsp import sinefit, spectrum
-from livefilt.dsp.detect import RmsDetector
 from livefilt.errors import LivefiltError, SettingError
 from livefilt.stream.engine import build_source
 from livefilt.units import si
@@ -94,7 +94,7 @@ def run_check(settings: Settings, out, input_path=None, duration_s=None, tone_hz
                             "need at least 1024 for a check")
     channel = _channel(settings, cap, played)
     ref_hz = _reference_hz(settings if config_reference else None, src)
-    enbw = _detector_enbw(settings, cap.rate_hz)
+    enbw = detector_enbw(settings, cap.rate_hz)
     known = _known_noise(src)
     if played is not None:
         tone = float(src.reference_hint["frequency_hz"]) if src.reference_hint else played["frequency_hz"]
@@ -280,10 +280,7 @@ def _channel(settings: Settings, cap: Capture, played) -> int:
     names = cap.channel_names
     if played is not None:
         return 0  # the loopback input alone was recorded
-    inp = settings.chains[0].input if settings.chains else 0
-    if isinstance(inp, str):
-        return names.index(inp) if inp in names else 0
-    return inp if 0 <= inp < len(names) else 0
+    return channel_index(settings, names)
 
 
 def _reference_hz(settings: Settings, src) -> float | None:
@@ -296,11 +293,6 @@ def _reference_hz(settings: Settings, src) -> float | None:
     return None
 
 
-def _detector_enbw(settings: Settings, rate_hz: float) -> float:
-    """ENBW of the first chain's detector output low-pass (1 Hz when none)."""
-    if not settings.chains:
-        return 1.0
-    return float(RmsDetector(settings.chains[0].detector, rate_hz, 1, exact_path=True).enbw_hz)
 
 
 def _volts_per_fs(src) -> float | None:
@@ -382,7 +374,7 @@ def _spectrum_figure(figs: dict, doc: dict):
     spec = figs["spec"]
     fig, ax = figure(8.0, 4.6)
     f, d = spec.freqs_hz[1:], spec.density[1:]
-    ax.loglog(f, d, lw=0.7, color="#33507a", label="noise density")
+    draw_density(ax, spec, figs["lines"], max_marks=14)
     raw = figs["raw"]
     if figs["tone"] is not None:
         ax.loglog(raw.freqs_hz[1:], raw.density[1:], lw=0.5, color="#b9c4d4", zorder=0,
@@ -396,32 +388,10 @@ def _spectrum_figure(figs: dict, doc: dict):
     ax.axvspan(lo, hi, color="#f3d9c2", alpha=0.35, lw=0)
     if figs["ref_hz"]:
         ax.axvline(figs["ref_hz"], color="#c25400", lw=0.8, ls="--", label="reference")
-    placed: list[float] = []
-    for ln in _marked(figs["lines"]):
-        k = int(np.argmin(np.abs(spec.freqs_hz - ln.hz)))
-        colour = {"mains": "#7a2d8c", "flicker": "#7a2d8c", "signal": "#c25400"}.get(ln.kind, "#444444")
-        ax.plot(ln.hz, spec.density[k], marker="v", ms=5, color=colour, ls="none")
-        if all(abs(math.log(ln.hz / p)) > 0.12 for p in placed):
-            placed.append(ln.hz)
-            ax.annotate(ln.label.split(" (")[0] if ln.kind != "signal" else "modulation",
-                        (ln.hz, spec.density[k]), textcoords="offset points",
-                        xytext=(2, 5), fontsize=7, rotation=55, color="#333333")
-    ax.set_xlabel("frequency (Hz)")
-    ax.set_ylabel("density (FS/√Hz)")
-    ax.set_xlim(f[0], f[-1])
-    ax.grid(True, which="both", lw=0.3, alpha=0.5)
     ax.legend(loc="lower left", fontsize=8)
     top = float(np.nanmax(d)) if d.size else 1.0
     ax.set_ylim(top=top * 30)  # room for the labels
     return fig
-
-
-def _marked(lines):
-    """What the figure marks: mains and flicker lines, the modulation, the
-    strongest spurs and humps; at most 14."""
-    first = [ln for ln in lines if ln.kind in ("mains", "flicker", "signal")]
-    rest = [ln for ln in lines if ln.kind in ("spur", "hump")]
-    return (first + rest)[:14]
 
 
 def _timing_figure(cap: Capture):
