@@ -161,9 +161,10 @@ def stream_health(cap: Capture, skip_s: float = 0.5) -> dict:
     """Rate and timing of a live capture, against the host's monotonic clock.
 
     Rate: a least-squares line through (frames offered, host time) of every
-    hand-over after the first ``skip_s`` (a stream's start often comes in a
-    burst), refitted once without hand-overs more than 4 median absolute
-    deviations late (a busy host delays a hand-over; it never makes one
+    hand-over after the first ``skip_s`` or tenth of the record (a stream's
+    start often comes in a burst: what a port buffered before it was read),
+    refitted without hand-overs more than 4 median absolute deviations late
+    until none is (a busy host delays a hand-over; it never makes one
     early).  ``rate_ppm`` is the rate the slope gives against the nominal
     rate.  Its uncertainty is the jitter allowance of the two ends of the
     record, ``sqrt(2) sigma / T`` with ``sigma`` the residual spread and T the
@@ -183,22 +184,22 @@ def stream_health(cap: Capture, skip_s: float = 0.5) -> dict:
     out["delivery_interval_s"] = float(np.median(dt))
     out["delivery_jitter_s"] = float(np.std(dt))
     out["longest_gap_s"] = float(dt.max())
-    keep = t >= t[0] + skip_s
+    keep = t >= t[0] + max(skip_s, 0.1 * (t[-1] - t[0]))
     if keep.sum() < 8:
         keep[:] = True
     tt, nn = t[keep] - t[keep][0], n[keep]
     out["span_s"] = float(tt[-1])
     if not cap.realtime or tt[-1] <= 0:
         return out
-    for _ in range(2):
+    for _ in range(5):
         slope, icpt = np.polyfit(nn, tt, 1)  # seconds per frame
         r = tt - (slope * nn + icpt)
         mad = float(np.median(np.abs(r - np.median(r)))) or 1e-9
         good = r < np.median(r) + 4 * 1.4826 * mad
-        if good.all():
+        if good.all() or good.sum() < 8:
             break
         tt, nn = tt[good], nn[good]
-    sigma = float(np.std(r[good])) if good.any() else float(np.std(r))
+    sigma = float(np.std(r))
     measured = 1.0 / slope
     out["measured_rate_hz"] = float(measured)
     out["rate_ppm"] = float((measured / cap.rate_hz - 1) * 1e6)

@@ -87,8 +87,8 @@ def run_check(settings: Settings, out, input_path=None, duration_s=None, tone_hz
             overrides["pace"] = "realtime"  # the rate check needs a paced stream
         src = build_source(settings, **overrides)
         seconds = duration_s or DEFAULT_S
-    volts_fs = _volts_per_fs(src)
     cap = capture(src, seconds, desc="check", settle_s=0.3 if played else 0.0)
+    volts_fs = _volts_per_fs(src)  # after open: a serial board states its reference then
     if cap.data.shape[0] < 1024:
         raise LivefiltError(f"{cap.device}: only {cap.data.shape[0]} frames arrived: "
                             "need at least 1024 for a check")
@@ -113,14 +113,16 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
     x = cap.data[:, channel].astype(np.float64)
     fs = cap.rate_hz
     units = cap.units
-    # work in full-scale units; volts where calibrated
+    # work in full-scale units (FS: 1.0 is a full-scale sine's peak), volts beside
+    # them where calibrated; volts alone when the full scale is not known
     to_fs = (1.0 / volts_per_fs) if (units == "V" and volts_per_fs) else 1.0
     v_per_fs = volts_per_fs if volts_per_fs else None
+    u = "V" if (units == "V" and not volts_per_fs) else "FS"
     xf = x * to_fs
     doc: dict = {"source": {"device": cap.device, "rate_hz": fs, "channel": cap.channel_names[channel],
                             "units": units, "seconds": cap.seconds}}
     verdict: list[str] = []
-    raw = spectrum.welch_density(xf, fs, resolution_hz=_resolution(cap.seconds), units="FS")
+    raw = spectrum.welch_density(xf, fs, resolution_hz=_resolution(cap.seconds), units=u)
     # the tone
     tf = None
     if find_tone:
@@ -131,18 +133,21 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
         if not 0 < tone_hz < fs / 2:
             raise SettingError("--tone", tone_hz, f"must be above 0 and below Nyquist, {fs / 2:g} Hz")
         tf = sinefit.tone_figures(xf, fs, tone_hz, full_scale=1.0)
-        doc["tone"] = {"hz": tf.fit.frequency_hz, "amplitude_fs": tf.amplitude_fs,
+        doc["tone"] = {"hz": tf.fit.frequency_hz,
+                       "amplitude_fs": tf.amplitude_fs if u == "FS" else math.nan,
                        "sinad_db": tf.sinad_db, "thd_db": tf.thd_db, "sfdr_db": tf.sfdr_db,
                        "enob_bits": tf.enob_bits, "enob_fs_bits": tf.enob_fs_bits,
                        "played": bool(tone_played),
                        "harmonics": [{"h": h, "hz": f, "amplitude_fs": a} for h, f, a in tf.harmonics]}
+        level = (f"{20 * math.log10(max(tf.amplitude_fs, 1e-300)):.2f} dBFS" if u == "FS"
+                 else f"{si(tf.fit.amplitude, 'V', 4)} peak")
         verdict.append(
-            f"tone {tf.fit.frequency_hz:.3f} Hz at {20 * math.log10(max(tf.amplitude_fs, 1e-300)):.2f} dBFS: "
+            f"tone {tf.fit.frequency_hz:.3f} Hz at {level}: "
             f"SINAD {tf.sinad_db:.1f} dB, THD {tf.thd_db:.1f} dB, SFDR {tf.sfdr_db:.1f} dB, "
             f"ENOB {tf.enob_bits:.2f} bits ({tf.enob_fs_bits:.2f} referred to full scale)")
         # the floor is measured on what is left after the fitted fundamental
         resid = xf - tf.fit.model(xf.size)
-        spec = spectrum.welch_density(resid, fs, resolution_hz=_resolution(cap.seconds), units="FS")
+        spec = spectrum.welch_density(resid, fs, resolution_hz=_resolution(cap.seconds), units=u)
     else:
         if tone_played:
             verdict.append("tone: not analysed")
@@ -154,6 +159,9 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
             known[f] = f"tone harmonic {h}"
     if ref_hz:
         known[ref_hz] = ("the modulation (reference)", "signal")
+        for h in (2, 3, 4, 5, 6, 7):  # a chopped source's harmonics are the signal's too
+            if h * ref_hz < fs / 2:
+                known.setdefault(h * ref_hz, (f"modulation harmonic {h}", "signal"))
     lines = spectrum.find_lines(spec, known=known)
     nominal, mains_measured = spectrum.measure_mains(spec, lines)
     if nominal:
@@ -167,25 +175,31 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
         where = f"{lo:.0f} Hz-{hi / 1000:.1f} kHz (no reference configured)"
     floor = spectrum.median_floor(spec, lo, hi, lines)
     wide = spectrum.median_floor(spec, max(20.0, 10 * spec.bin_hz), 0.45 * fs, lines)
-    noise = {"density_fs_per_rthz": floor, "band_hz": [lo, hi], "wide_density_fs_per_rthz": wide,
+    noise = {"density_fs_per_rthz": floor if u == "FS" else math.nan, "band_hz": [lo, hi],
+             "wide_density_fs_per_rthz": wide if u == "FS" else math.nan,
              "window": spec.window, "enbw_bins": spec.enbw_bins, "enbw_hz": spec.enbw_hz,
              "segment": spec.segment, "averages": spec.averages, "detector_enbw_hz": enbw_hz}
     if v_per_fs:
         noise["density_v_per_rthz"] = floor * v_per_fs
         noise["volts_full_scale"] = v_per_fs
+    elif u == "V":
+        noise["density_v_per_rthz"] = floor
+        noise["wide_density_v_per_rthz"] = wide
     noise_det = floor * math.sqrt(enbw_hz)
     fs_rms = 1 / math.sqrt(2)  # a full-scale sine, rms (amplitudes in livefilt are rms)
-    noise["dynamic_reserve_db"] = 20 * math.log10(fs_rms / noise_det) if noise_det > 0 else math.inf
+    noise["dynamic_reserve_db"] = (20 * math.log10(fs_rms / noise_det) if noise_det > 0 else math.inf) \
+        if u == "FS" else math.nan
     interferers = [ln for ln in lines if ln.kind not in ("tone", "signal")]
     peak = float(np.max(np.abs(xf - xf.mean())))
-    if tf is None:
+    if tf is None and u == "FS":
         left = max(1.0 - peak, 0.0)
         noise["reserve_left_db"] = (20 * math.log10(left / math.sqrt(2) / noise_det)
                                     if left > 0 and noise_det > 0 else -math.inf)
-    noise["peak_fs"] = peak
+    noise["peak_fs" if u == "FS" else "peak_v"] = peak
     if interferers:
         big = interferers[0]
-        noise["largest_interferer"] = {"hz": big.hz, "label": big.label, "level_fs": big.level}
+        noise["largest_interferer"] = {"hz": big.hz, "label": big.label,
+                                       "level_fs" if u == "FS" else "level_v": big.level}
     if known_noise:
         noise["expected_density_fs_per_rthz"] = known_noise
         noise["expected_ratio"] = floor / known_noise
@@ -194,19 +208,21 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
                     "measured_hz": mains_measured}
     doc["lines"] = [ln.to_mapping() for ln in lines[:40]]
     # verdict: noise
-    dens = _density_text(floor, "FS")
+    dens = _density_text(floor, u)
     volts = f" ({_density_text(floor * v_per_fs, 'V')})" if v_per_fs else ""
+    reserve = (f"; dynamic reserve {noise['dynamic_reserve_db']:.0f} dB" if u == "FS"
+               else "; full scale unknown, so no dynamic reserve")
     verdict.append(
         f"floor {dens}{volts} in {where}: a lock-in of ENBW {enbw_hz:.3g} Hz sees "
-        f"{si(noise_det, 'FS', 3)} rms; dynamic reserve {noise['dynamic_reserve_db']:.0f} dB")
+        f"{si(noise_det, u, 3)} rms{reserve}")
     if known_noise:
         verdict.append(f"  the simulated bench says its noise is {_density_text(known_noise, 'FS')}: "
                        f"measured/expected {floor / known_noise:.3f}")
     if interferers:
         big = interferers[0]
         left = noise.get("reserve_left_db")
-        verdict.append(f"largest interferer: {big.label} at {si(big.level, 'FS', 3)} rms; input peaks at "
-                       f"{peak:.3f} FS" + (f", leaving {left:.0f} dB of reserve for the signal"
+        verdict.append(f"largest interferer: {big.label} at {si(big.level, u, 3)} rms; input peaks at "
+                       f"{si(peak, u, 4)}" + (f", leaving {left:.0f} dB of reserve for the signal"
                                            if left is not None and math.isfinite(left) else ""))
     if nominal:
         verdict.append(f"mains {nominal} Hz (measured {mains_measured:.3f} Hz)")
@@ -296,10 +312,15 @@ def _reference_hz(settings: Settings, src) -> float | None:
 
 
 def _volts_per_fs(src) -> float | None:
-    """Volts per full-scale unit where the driver knows it."""
+    """Volts of a full-scale sine's peak where the driver knows it: the sound
+    card's ``volts_full_scale``, half the serial board's reference (its ADC
+    spans 0 to Vref), the simulated bench's ADC limit."""
     v = getattr(src, "volts_full_scale", None)
     if v:
         return float(v)
+    desc = getattr(src, "description", None)
+    if desc is not None and getattr(desc, "vref_v", 0):
+        return float(desc.vref_v) / 2
     scene = getattr(src, "scene", None)
     if scene is not None:
         return float(scene.adc_fs_v)
@@ -336,14 +357,16 @@ def _write(out, doc: dict, figs: dict, cap: Capture) -> None:
     rep.section("Verdict", rep.paragraphs(*doc["verdict"]))
     rep.section("Noise density", rep.img("spectrum.png"))
     n = doc["noise"]
-    rows = [["floor (median, away from lines)", _density_text(n["density_fs_per_rthz"], "FS")],
+    u = spec.units
+    floor_text = lambda key: _density_text(n[key.replace("fs", "v")] if u == "V" else n[key], u)  # noqa: E731
+    rows = [["floor (median, away from lines)", floor_text("density_fs_per_rthz")],
             ["band", f"{n['band_hz'][0]:.0f} to {n['band_hz'][1]:.0f} Hz"],
-            ["floor over the whole band", _density_text(n["wide_density_fs_per_rthz"], "FS")],
+            ["floor over the whole band", floor_text("wide_density_fs_per_rthz")],
             ["detector ENBW", f"{n['detector_enbw_hz']:.3g} Hz"],
             ["dynamic reserve (full-scale sine over the noise in the detector's ENBW)",
              f"{n['dynamic_reserve_db']:.1f} dB"],
             ["Welch window, ENBW", f"{n['window']}, {n['enbw_bins']:.3f} bins = {n['enbw_hz']:.3g} Hz"]]
-    if "density_v_per_rthz" in n:
+    if "density_v_per_rthz" in n and u == "FS":
         rows.insert(1, ["floor in volts", _density_text(n["density_v_per_rthz"], "V")])
     if "expected_density_fs_per_rthz" in n:
         rows.append(["the simulated bench's own noise", _density_text(n["expected_density_fs_per_rthz"], "FS")])
@@ -359,7 +382,7 @@ def _write(out, doc: dict, figs: dict, cap: Capture) -> None:
             "ENOB = (SINAD - 1.76)/6.02 per IEEE Std 1241."))
     rep.section("Lines found", rep.table(
         ["frequency", "what", "level (rms)", "above floor"],
-        [[f"{ln['hz']:.2f} Hz", ln["label"], si(ln["level"], "FS", 3), f"{ln['above_floor_db']:.1f} dB"]
+        [[f"{ln['hz']:.2f} Hz", ln["label"], si(ln["level"], spec.units, 3), f"{ln['above_floor_db']:.1f} dB"]
          for ln in doc["lines"][:25]]))
     s = doc["stream"]
     rows = [[k.replace("_", " "), f"{v:.6g}" if isinstance(v, float) else str(v)] for k, v in s.items()]

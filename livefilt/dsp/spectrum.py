@@ -264,7 +264,7 @@ def measure_mains(spec: Density, lines: list[Line] | None = None) -> tuple[int |
     for nominal in (50, 60):
         num = den = 0.0
         for ln in lines:
-            if ln.kind == "hump":
+            if ln.kind in ("hump", "tone", "signal"):
                 continue
             h = round(ln.hz / nominal)
             if 1 <= h <= 10 and abs(ln.hz - h * nominal) <= max(1.5 * h * 0.5, 2 * spec.bin_hz):

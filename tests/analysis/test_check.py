@@ -113,3 +113,39 @@ def test_serial_board_clock_off_by_a_known_ppm(tmp_path):
     # what was injected, as the driver counts it (tests/drivers/test_serialport.py)
     assert s["crc_errors"] == 1 and s["seq_gaps"] == 2
     assert s["dropped_frames"] == s["lost_frames"] == 3 * 8
+
+
+def test_reference_firmware_with_its_crystal_off_by_a_known_ppm(tmp_path):
+    """The real firmware in simavr, paced in real time with its 16 MHz crystal
+    2500 ppm fast (simhost --pace-ppm), through a pseudo-terminal into the
+    serial driver: the check must find the 2500 ppm."""
+    import os
+    import subprocess
+    import tty
+
+    from tests.drivers.test_firmware import FIRMWARE, _make
+    from tests.system import require
+    require(subprocess.run(["pkg-config", "--exists", "simavr"]).returncode == 0,
+            "libsimavr-dev missing: run .ci/setup-firmware.sh as root")
+    _make()
+    _make("simhost")
+    ppm = 2500.0
+    master, slave = os.openpty()
+    tty.setraw(slave)
+    sim = subprocess.Popen([str(FIRMWARE / "build" / "simhost"), str(FIRMWARE / "build" / "firmware.elf"),
+                            "--seconds", "9", "--fd", str(master), "--pace-ppm", str(ppm)],
+                           pass_fds=(master,), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
+    try:
+        run_check(_serial_settings(os.ttyname(slave)), tmp_path, duration_s=5.0)
+    finally:
+        sim.kill()
+        sim.communicate()
+        os.close(master)
+        os.close(slave)
+    got = _read(tmp_path)
+    s = got["stream"]
+    print({k: s[k] for k in ("rate_ppm", "rate_ppm_uncertainty", "delivery_jitter_s", "longest_gap_s")})
+    assert s["rate_ppm_uncertainty"] < 300
+    assert s["rate_ppm"] == pytest.approx(ppm, abs=max(3 * s["rate_ppm_uncertainty"], 100))
+    assert (s["crc_errors"], s["seq_gaps"], s["dropped_frames"]) == (0, 0, 0)
+    assert got["source"]["units"] == "V"
