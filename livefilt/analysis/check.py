@@ -93,7 +93,10 @@ def run_check(settings: Settings, out, input_path=None, duration_s=None, tone_hz
         raise LivefiltError(f"{cap.device}: only {cap.data.shape[0]} frames arrived: "
                             "need at least 1024 for a check")
     channel = _channel(settings, cap, played)
-    ref_hz = _reference_hz(settings if config_reference else None, src)
+    if played is not None:  # the drive's own frequency is the modulation; the tone is a test
+        ref_hz = float(settings.source.options["drive"].get("frequency_hz", 0)) or None
+    else:
+        ref_hz = _reference_hz(settings if config_reference else None, src)
     enbw = detector_enbw(settings, cap.rate_hz)
     known = _known_noise(src)
     if played is not None:

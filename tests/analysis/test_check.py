@@ -20,6 +20,7 @@ from livefilt.cli import main
 from livefilt.config import demo_config, parse_config
 
 from tests.drivers.serial_emulator import BoardEmulator
+from tests.drivers.test_soundcard import LOOP, sound  # noqa: F401 (a fixture: the server, or skip/fail)
 
 FS = 48000
 
@@ -149,3 +150,27 @@ def test_reference_firmware_with_its_crystal_off_by_a_known_ppm(tmp_path):
     assert s["rate_ppm"] == pytest.approx(ppm, abs=max(3 * s["rate_ppm_uncertainty"], 100))
     assert (s["crc_errors"], s["seq_gaps"], s["dropped_frames"]) == (0, 0, 0)
     assert got["source"]["units"] == "V"
+
+
+def test_sound_card_plays_and_measures_its_test_tone(tmp_path, sound):
+    """Through the real sound server's null sink (tests/drivers/test_soundcard.py
+    sets it up the same way; fails in CI when it is missing): the float32 loop is
+    bit-exact, so the tone comes back as played, 997 Hz at -1 dBFS."""
+    settings = parse_config({
+        "source": {"driver": "soundcard", "rate_hz": FS, "block": 256, "device": sound, "channels": [0],
+                   "drive": {"output_channel": 0, "waveform": "square", "frequency_hz": 2370.0,
+                             "amplitude": 0.8}},
+        "chains": [{"name": "A", "stages": [],
+                    "detector": {"type": "lockin", "time_constant_s": 0.05}}]})
+    res = run_check(settings, tmp_path, duration_s=3.0)
+    got = _read(tmp_path)
+    t = got["tone"]
+    print(res["verdict"])
+    assert t["played"] and t["hz"] == pytest.approx(997.0, abs=1e-6)
+    assert t["amplitude_fs"] == pytest.approx(10 ** (-1 / 20), rel=1e-6)
+    # float32 carries 24 significant bits: far beyond any sound card's converter
+    assert t["sinad_db"] > 120 and t["enob_bits"] > 19
+    s = got["stream"]
+    assert s["input_overflows"] == 0 and s["dropped_frames"] == 0
+    assert "delivery_jitter_s" in s and s["longest_gap_s"] < 1.0
+    assert abs(s["rate_ppm"]) <= 3 * s["rate_ppm_uncertainty"] + 200
