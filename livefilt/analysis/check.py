@@ -47,6 +47,9 @@ __all__ = ["main", "run_check", "analyse", "TONE_HZ", "TONE_DBFS"]
 TONE_HZ = 997.0
 TONE_DBFS = -1.0
 DEFAULT_S = 10.0
+#: With --input and no --tone, the largest line is analysed as a test tone only
+#: when it holds at least this share of the recording's AC power.
+TONE_SHARE = 0.5
 
 
 def main(args) -> int:
@@ -129,9 +132,17 @@ def analyse(cap: Capture, channel: int, ref_hz=None, enbw_hz=1.0, tone_hz=None,
     # the tone
     tf = None
     if find_tone:
+        # a recording's largest tone is a test tone only when it holds most of the power
         lines0 = spectrum.find_lines(raw, threshold_db=20.0)
         narrow = [ln for ln in lines0 if ln.kind != "hump" and ln.hz > 10 * raw.bin_hz]
-        tone_hz = narrow[0].hz if narrow else None
+        ac = float(np.var(xf))
+        share = narrow[0].level ** 2 / ac if narrow and ac > 0 else 0.0
+        if share >= TONE_SHARE:
+            tone_hz = narrow[0].hz
+        else:
+            verdict.append("tone: none dominates the recording"
+                           + (f" (the largest line, {narrow[0].label}, holds {100 * share:.0f} % of "
+                              "the power)" if narrow else "") + "; give --tone HZ to analyse one")
     if tone_hz is not None:
         if not 0 < tone_hz < fs / 2:
             raise SettingError("--tone", tone_hz, f"must be above 0 and below Nyquist, {fs / 2:g} Hz")

@@ -91,7 +91,7 @@ def main(args) -> int:
     settings = load_config(args.config) if args.config else demo_config()
     drift = getattr(args, "drift_pct", None)
     path = Path(args.recording)
-    out = Path(args.out) if args.out else (path if path.is_dir() else path.parent) / (path.stem + "-survey")
+    out = Path(args.out) if args.out else path.parent / (path.stem + "-survey")  # beside, never inside a run
     doc = run_survey(path, out, settings, drift_pct=DRIFT_PCT if drift is None else drift,
                      digitizer_rate_hz=settings.source.rate_hz if args.config else None)
     for line in doc["verdict"]:
