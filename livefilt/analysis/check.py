@@ -366,7 +366,7 @@ def _write(out, doc: dict, figs: dict, cap: Capture) -> None:
     rep.figure("spectrum.png", _spectrum_figure(figs, doc), "Noise density (Welch, "
                f"{spec.window}, ENBW {spec.enbw_hz:.3g} Hz, {spec.averages} averages)")
     if cap.realtime and cap.arrival_t.size > 8:
-        rep.figure("timing.png", _timing_figure(cap), "When the driver handed samples over, "
+        rep.figure("timing.png", _timing_figure(cap, doc["stream"]), "When the driver handed samples over, "
                    "against the nominal rate")
     rep.section("Verdict", rep.paragraphs(*doc["verdict"]))
     rep.section("Noise density", rep.img("spectrum.png"))
@@ -431,11 +431,25 @@ def _spectrum_figure(figs: dict, doc: dict):
     return fig
 
 
-def _timing_figure(cap: Capture):
+def _timing_figure(cap: Capture, stream: dict):
+    """Each hand-over's lateness against the nominal rate; a clock that runs fast
+    or slow is a slope (the fitted one drawn over the points)."""
     fig, ax = figure(8.0, 3.2)
     t = cap.arrival_t - cap.arrival_t[0]
     late = t - (cap.arrival_n - cap.arrival_n[0]) / cap.rate_hz
-    ax.plot(t, 1e3 * late, lw=0.6, color="#33507a")
+    ax.plot(t, 1e3 * late, ".", ms=1.5, color="#33507a", label="hand-overs")
+    ppm = stream.get("rate_ppm", math.nan)
+    if math.isfinite(ppm):
+        # frames come (1 + ppm 1e-6) times as fast: lateness falls by ppm 1e-6 per second
+        base = float(np.median(late - (-ppm * 1e-6) * t))
+        ax.plot(t, 1e3 * (base - ppm * 1e-6 * t), color="#c25400", lw=1.2,
+                label=f"fitted: {ppm:+.0f} ± {stream['rate_ppm_uncertainty']:.0f} ppm")
+        ax.legend(loc="upper right", fontsize=8)
+    steady = late[t >= max(0.5, 0.1 * t[-1])] if t[-1] > 0 else late
+    if steady.size > 8:  # zoom on the steady part; a start-up burst may go off scale
+        lo, hi = np.percentile(steady, [0.5, 99.5])
+        pad = max(1e-3, 0.15 * (hi - lo))
+        ax.set_ylim(1e3 * (lo - pad), 1e3 * (hi + pad))
     ax.set_xlabel("host time since the first hand-over (s)")
     ax.set_ylabel("arrival − nominal (ms)")
     ax.grid(True, lw=0.3, alpha=0.5)
