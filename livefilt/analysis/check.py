@@ -283,8 +283,9 @@ def _stream(cap: Capture, verdict: list) -> dict:
         verdict.append(f"serial: {stream['crc_errors']} CRC errors, {stream.get('seq_gaps', 0)} sequence "
                        f"gaps [{ok(stream['crc_errors'] == 0 and stream.get('seq_gaps', 0) == 0)}]")
     if "input_overflows" in stream:
+        bad = stream["input_overflows"] + stream.get("output_underflows", 0)
         verdict.append(f"sound card: {stream['input_overflows']} input overflows, "
-                       f"{stream.get('output_underflows', 0)} output underflows")
+                       f"{stream.get('output_underflows', 0)} output underflows [{ok(bad == 0)}]")
     if "delivery_interval_s" in h:
         what = "callback" if "input_overflows" in stream else "hand-over"
         verdict.append(f"{what} every {1e3 * h['delivery_interval_s']:.2f} ms, jitter "

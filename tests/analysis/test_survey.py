@@ -106,3 +106,17 @@ def test_bad_input_is_one_line(tmp_path, capsys):
     assert len(err) == 1 and "a survey needs at least 4096" in err[0]
     assert main(["survey", str(tmp_path / "short.wav"), "--drift-pct", "-1"]) == 2
     assert "--drift-pct = -1.0: must be from 0 to 10" in capsys.readouterr().err
+
+
+def test_a_run_folder_is_surveyed_and_the_report_lands_beside_it(tmp_path, capsys):
+    # a run of the simulated greenhouse bench (invented scene), recorded by the CLI
+    assert main(["run", "--fast", "--duration", "3", "--out", str(tmp_path)]) == 0
+    (run,) = [p for p in tmp_path.iterdir() if p.name.startswith("run-")]
+    capsys.readouterr()
+    assert main(["survey", str(run)]) == 0
+    out = tmp_path / f"{run.name}-survey"
+    got = tomllib.loads((out / "survey.toml").read_text())
+    assert got["channel"] == "photodiode" and got["mains_hz"] == 50
+    assert not (run / f"{run.name}-survey").exists()  # nothing written into the run
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[0].startswith("mains 50 Hz") and lines[1] == f"recommended modulation: {got['recommended_hz']:g} Hz"
