@@ -1,6 +1,8 @@
 """Replay a recording: WAV files (int16, int24, int32, float32/64; any rate and
 channel count; RF64) or a livefilt run folder (its raw.wav, with the channel
-names, units and reference of the original run).
+names, units and reference of the original run; its distance markers are
+carried into the new run, and :meth:`FileSource.info` names the run replayed:
+``replay_of``, ``replay_of_started_utc``).
 
 Options (``[source]`` table, or ``livefilt run --input PATH [--fast]``)
 -----------------------------------------------------------------------
@@ -19,6 +21,7 @@ import tomllib
 from pathlib import Path
 
 from livefilt.errors import RecordingError, SettingError, SourceError
+from livefilt.threads import Worker
 from livefilt.acquire.source import Pacer, Source
 from livefilt.runs.wavio import WavReader
 
@@ -97,10 +100,20 @@ class FileSource(Source):
                                    "phase_deg": ref.get("phase_deg", 0.0)}
         self.device = f"{p} ({r.sample_format}, {r.channels} ch, {r.rate_hz:g} Hz, {r.frames / r.rate_hz:.1f} s)"
         self.frames_total = r.frames
+        self.length_s = None if self.loop else r.frames / r.rate_hz
+        # a replayed run carries its markers and says where it came from
+        self.markers = [{k: m[k] for k in ("time_s", "distance_m", "note") if k in m}
+                        for m in meta.get("markers", []) if isinstance(m, dict) and "time_s" in m]
+        self._replay_of = None
+        if meta:
+            run = meta.get("run", {})
+            self._replay_of = {"replay_of": str(p.resolve()),
+                               "replay_of_started_utc": run.get("started_utc", ""),
+                               "replay_of_markers": len(self.markers)}
 
     def start(self, ring) -> None:
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-file", daemon=True)
+        self._thread = Worker(lambda: self._run(ring), "livefilt-file", on_error=lambda w: ring.close())
         self._thread.start()
 
     def _run(self, ring) -> None:
@@ -135,4 +148,6 @@ class FileSource(Source):
     def info(self):
         d = super().info()
         d["path"] = str(self.path)
+        if getattr(self, "_replay_of", None):
+            d.update(self._replay_of)
         return d

@@ -39,6 +39,20 @@ target : "canopy" | "leaf", default "canopy"
     "canopy" fills the beam (1/d^2); "leaf" is a 20 cm^2 target (1/d^4 far out).
 distance_m : float, optional
     Hold the target at this distance instead of following the script.
+walk_m : list of float, optional
+    The walk-away scene: the target held at each distance for ``hold_s``,
+    moving between them in ``move_s`` (linearly); the source ends after the
+    last hold, and writes truth markers itself (a distance marker where each
+    hold begins, a "moving" marker where each move begins; their note says
+    they come from the simulation).
+hold_s, move_s : float, default 4 and 1
+adc_bits : int, default 16
+    Resolution of the simulated ADC, 8 to 24 bits.  At 16 bits the scene's
+    own noise dithers the quantiser only partly, so its error is not quite
+    white; 24 bits makes it negligible (the range tests use that).
+sky : "clouds" | "clear", default "clouds"
+    "clear" holds the sunlight steady (a known, constant noise density, as
+    :meth:`Scene.white_density_fs` computes it).
 """
 
 from __future__ import annotations
@@ -48,6 +62,7 @@ import threading
 import numpy as np
 
 from livefilt.errors import SettingError
+from livefilt.threads import Worker
 from livefilt.acquire.source import DeviceInfo, Pacer, Source
 
 __all__ = ["SimulatedSource", "Scene"]
@@ -84,15 +99,51 @@ class Scene:
     adc_bits, adc_fs_v = 16, 1.0
 
     def __init__(self, fs: float, led_hz: float, mains_hz: float, target: str,
-                 distance_m: float | None, seed: int):
+                 distance_m: float | None, seed: int, walk_m=None, hold_s: float = 4.0,
+                 move_s: float = 1.0):
         self.fs, self.led_hz, self.mains_hz = fs, led_hz, mains_hz
         self.target, self.fixed_distance, self.seed = target, distance_m, seed
         self._script_t = np.cumsum([0.0] + [s[0] for s in _SCRIPT])
+        self.walk_m = None if walk_m is None else [float(d) for d in walk_m]
+        self.hold_s, self.move_s = float(hold_s), float(move_s)
+
+    # -- walk-away scene --------------------------------------------------
+    @property
+    def walk_s(self) -> float | None:
+        """Length of the walk-away scene, s (None without one)."""
+        if self.walk_m is None:
+            return None
+        return len(self.walk_m) * self.hold_s + (len(self.walk_m) - 1) * self.move_s
+
+    def walk_markers(self) -> list[dict]:
+        """The walk's truth markers: a distance where each hold begins, "moving"
+        where each move begins."""
+        out, t = [], 0.0
+        for i, d in enumerate(self.walk_m or []):
+            out.append({"time_s": round(t, 6), "distance_m": d,
+                        "note": "truth from the simulation (walk-away scene)"})
+            t += self.hold_s
+            if i + 1 < len(self.walk_m):
+                out.append({"time_s": round(t, 6), "note": "moving (walk-away scene, simulated)"})
+                t += self.move_s
+        return out
+
+    def _walk_distance(self, t):
+        d = np.asarray(self.walk_m)
+        period = self.hold_s + self.move_s
+        t = np.asarray(t, dtype=float)
+        k = np.clip(np.floor(t / period).astype(int), 0, len(d) - 1)
+        into = t - k * period
+        nxt = np.minimum(k + 1, len(d) - 1)
+        frac = np.clip((into - self.hold_s) / self.move_s if self.move_s > 0 else 0.0, 0.0, 1.0)
+        return d[k] + (d[nxt] - d[k]) * frac
 
     def distance(self, t: np.ndarray | float) -> np.ndarray:
         """Target distance in metres at time ``t`` (s)."""
         if self.fixed_distance is not None:
             return np.full(np.shape(t), self.fixed_distance)
+        if self.walk_m is not None:
+            return self._walk_distance(t)
         tt = np.mod(t, self._script_t[-1])
         starts = np.array([s[1] for s in _SCRIPT])
         ends = np.array([s[2] for s in _SCRIPT])
@@ -114,6 +165,38 @@ class Scene:
         a = self.resp_a_w * float(self.reflected_w(np.asarray(d))) * self.r_f / self.adc_fs_v
         return 2 * a / np.pi / np.sqrt(2)
 
+    def white_density_fs(self, cloud: float = 1.0) -> float:
+        """One-sided white-noise density at the ADC output, full scale per
+        sqrt(Hz), under a steady sky (``cloud`` = 1: clear): shot, thermal and
+        amplifier noise of the mean photocurrent plus the quantisation noise
+        q^2/12 spread over 0..fs/2 (IEEE Std 1241, uniform quantisation;
+        common practice).  The signal's own shot noise is left out (under
+        1e-4 of the sunlight's current here)."""
+        i_mean = self.i_sun * cloud + self.i_lamp + self.i_pwm * self.pwm_duty
+        e_v = self.noise_density_v(i_mean)
+        return float(np.hypot(e_v, self.quantisation_density_v()) / self.adc_fs_v)
+
+    def quantisation_density_v(self) -> float:
+        """The ADC's quantisation noise q^2/12 spread over 0..fs/2, V/sqrt(Hz)
+        (IEEE Std 1241, uniform quantisation; common practice)."""
+        q = 2 * self.adc_fs_v / 2 ** self.adc_bits
+        return float(q / np.sqrt(12 * self.fs / 2))
+
+    def true_range_m(self, snr_db: float, enbw_hz: float, cloud: float = 1.0) -> float:
+        """Distance at which the lock-in's SNR falls to ``snr_db``: the signal's
+        rms fundamental (:meth:`signal_rms_fs`) over density x sqrt(ENBW)
+        (white noise through the output low-pass), solved by bisection."""
+        noise = self.white_density_fs(cloud) * np.sqrt(enbw_hz)
+        want = noise * 10 ** (snr_db / 20)
+        lo, hi = np.log(0.01), np.log(1000.0)
+        for _ in range(200):
+            mid = 0.5 * (lo + hi)
+            if self.signal_rms_fs(float(np.exp(mid))) > want:
+                lo = mid
+            else:
+                hi = mid
+        return float(np.exp(0.5 * (lo + hi)))
+
     def noise_density_v(self, i_total: float) -> float:
         """White-noise density at the TIA output, V/sqrt(Hz) (rows 7a, 7b)."""
         shot = np.sqrt(2 * Q_E * i_total) * self.r_f
@@ -132,19 +215,34 @@ class SimulatedSource(Source):
         "mains_hz": "50 or 60 (default 50)",
         "target": '"canopy" (beam-filling, 1/d^2) or "leaf" (small, 1/d^4 far out)',
         "distance_m": "hold the target at this distance instead of the script",
+        "walk_m": "walk-away scene: hold the target at each of these distances in turn "
+                  "(writes truth markers; the run ends after the last)",
+        "hold_s": "walk-away scene: seconds at each distance (default 4)",
+        "move_s": "walk-away scene: seconds moving between distances (default 1)",
+        "sky": '"clouds" (default, passing clouds) or "clear" (steady sunlight)',
+        "adc_bits": "simulated ADC resolution, 8 to 24 bits (default 16)",
     }
 
     def __init__(self, rate_hz: float, seed: int = 7, pace: str = "realtime",
                  led_hz: float = 1370.0, mains_hz: float = 50.0, target: str = "canopy",
-                 distance_m: float | None = None):
+                 distance_m: float | None = None, walk_m=None, hold_s: float = 4.0,
+                 move_s: float = 1.0, sky: str = "clouds", adc_bits: int = 16):
         self.rate_hz = float(rate_hz)
         self.channels = 2
         self.channel_names = ["photodiode", "led"]
         self.units = "FS"
         self.realtime = pace == "realtime"
-        self.scene = Scene(self.rate_hz, led_hz, mains_hz, target, distance_m, seed)
+        self.scene = Scene(self.rate_hz, led_hz, mains_hz, target, distance_m, seed,
+                           walk_m, hold_s, move_s)
+        self.scene.adc_bits = int(adc_bits)
+        self.sky = sky
         self.device = (f"greenhouse bench (simulated, seed {seed}, LED {led_hz:g} Hz, "
-                       f"mains {mains_hz:g} Hz, {target})")
+                       f"mains {mains_hz:g} Hz, {target}"
+                       + (f", walk-away {self.scene.walk_m[0]:g}-{self.scene.walk_m[-1]:g} m"
+                          if walk_m is not None else "") + ")")
+        self.markers = self.scene.walk_markers()
+        self._end = None if walk_m is None else int(round(self.scene.walk_s * self.rate_hz))
+        self.length_s = self.scene.walk_s
         self.reference_hint = {"frequency_hz": led_hz, "phase_deg": 0.0}
         self._seed = seed
         self._cloud_phase = np.random.default_rng([seed, 99]).uniform(0, 2 * np.pi, 3)
@@ -178,8 +276,29 @@ class SimulatedSource(Source):
         if dist is not None and (isinstance(dist, bool) or not isinstance(dist, (int, float))
                                  or not 0.05 <= dist <= 100):
             raise SettingError("source.distance_m", dist, "must be a distance from 0.05 to 100 m")
+        walk = options.get("walk_m")
+        if walk is not None:
+            if dist is not None:
+                raise SettingError("source.walk_m", walk, "give either walk_m or distance_m, not both")
+            if not isinstance(walk, list) or not walk or any(
+                    isinstance(d, bool) or not isinstance(d, (int, float)) or not 0.05 <= d <= 100
+                    for d in walk):
+                raise SettingError("source.walk_m", walk,
+                                   "must be a list of distances from 0.05 to 100 m, e.g. [0.5, 1, 2]")
+        times = {}
+        for key, default, lo in (("hold_s", 4.0, 0.1), ("move_s", 1.0, 0.0)):
+            v = options.get(key, default)
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not lo <= v <= 3600:
+                raise SettingError(f"source.{key}", v, f"must be a number of seconds from {lo:g} to 3600")
+            times[key] = float(v)
+        bits = options.get("adc_bits", 16)
+        if isinstance(bits, bool) or not isinstance(bits, int) or not 8 <= bits <= 24:
+            raise SettingError("source.adc_bits", bits, "must be a whole number of bits from 8 to 24")
+        sky = options.get("sky", "clouds")
+        if sky not in ("clouds", "clear"):
+            raise SettingError("source.sky", sky, 'must be "clouds" or "clear"')
         src = cls(rate_hz, seed, pace, float(led), float(mains), target,
-                  None if dist is None else float(dist))
+                  None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky, bits)
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
         return src
 
@@ -212,6 +331,8 @@ class SimulatedSource(Source):
         cloud = 1.0 - 0.55 * np.clip(shade + 0.15 * np.sin(2 * np.pi * 0.11 * t + ph[2]), 0, 1) ** 3
         # mains frequency wanders +-0.1 Hz (REFERENCES row 8): phase is its integral
         wander = -0.1 / (2 * np.pi * 0.02) * (np.cos(2 * np.pi * 0.02 * t + ph[0]) - np.cos(ph[0]))
+        if self.sky == "clear":
+            cloud = np.ones_like(cloud)
         return sc.distance(t), cloud, wander
 
     def _cycle_fraction(self, k: np.ndarray, f_hz: float) -> np.ndarray:
@@ -267,9 +388,8 @@ class SimulatedSource(Source):
         if not self._noise_chunks:
             return None
         sc = self.scene
-        q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
-        quant = q * q / 12 / (self.rate_hz / 2)
-        return float(np.sqrt(self._noise_power / self._noise_chunks + quant)) / sc.adc_fs_v
+        quant = sc.quantisation_density_v()
+        return float(np.sqrt(self._noise_power / self._noise_chunks + quant * quant)) / sc.adc_fs_v
 
     def distance_now(self) -> float:
         return float(self.scene.distance(self._index / self.rate_hz))
@@ -277,8 +397,7 @@ class SimulatedSource(Source):
     # -- running -------------------------------------------------------
     def start(self, ring) -> None:
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, args=(ring,), name="livefilt-sim",
-                                        daemon=True)
+        self._thread = Worker(lambda: self._run(ring), "livefilt-sim", on_error=lambda w: ring.close())
         self._thread.start()
 
     def _run(self, ring) -> None:
@@ -288,6 +407,11 @@ class SimulatedSource(Source):
         chunk, pos = self.generate(self._index, CHUNK), 0
         pacer = Pacer(self.rate_hz, self.realtime, self._stop)
         while pacer.wait(ring, self._index, piece):
+            if self._end is not None and self._index + piece > self._end:
+                ring.write(chunk[pos:pos + max(0, self._end - self._index)])
+                self._index = self._end
+                ring.close()  # the walk is over: the run ends here
+                return
             ring.write(chunk[pos:pos + piece])
             pos += piece
             self._index += piece
@@ -306,5 +430,6 @@ class SimulatedSource(Source):
     def info(self):
         d = super().info()
         d["seed"] = self._seed
-        d["scene"] = "greenhouse canopy-height sensor"
+        d["scene"] = "greenhouse canopy-height sensor" + (" (walk-away)" if self._end else "")
+        d["sky"] = self.sky
         return d

@@ -1,8 +1,10 @@
 """Command line: ``livefilt live | run | sources | speed | range | design | survey | check | tune``.
 
 Every user mistake ends in one line on stderr (``livefilt: <what>``) and exit
-status 2; Ctrl-C ends a run cleanly with its files closed.  Only this module
-configures logging.
+status 2; a failure while running (a recording stopped by a write error, an
+internal error in any thread) ends in one line and status 1, on time and with
+the files closed; Ctrl-C ends a run cleanly with its files closed (130).
+Only this module configures logging.
 """
 
 from __future__ import annotations
@@ -22,7 +24,12 @@ log = logging.getLogger("livefilt")
 
 def _settings(args):
     from livefilt.config import demo_config, load_config, parse_config
-    s = load_config(args.config) if getattr(args, "config", None) else demo_config()
+    if getattr(args, "config", None):
+        s = load_config(args.config)
+    elif getattr(args, "input", None) and _run_config(args.input) is not None:
+        s = parse_config(_run_config(args.input), f"{args.input}/run.toml")  # replay with its own settings
+    else:
+        s = demo_config()
     if getattr(args, "input", None):
         doc = s.to_mapping()
         doc["source"] = {"driver": "file", "rate_hz": s.source.rate_hz, "block": s.source.block,
@@ -36,6 +43,68 @@ def _settings(args):
     return s
 
 
+def _run_config(path: str):
+    """The ``[config]`` of a run folder's run.toml, or None for anything else."""
+    import tomllib
+    from pathlib import Path
+    meta = Path(path) / "run.toml"
+    if not meta.is_file():
+        return None
+    try:
+        return tomllib.loads(meta.read_text(encoding="utf-8")).get("config") or None
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError):
+        return None  # the file driver names the problem when it opens the folder
+
+
+def _marks(args, engine, duration_s):
+    """Schedule ``--marks FILE.csv`` into ``engine`` (replacing a replayed run's own)."""
+    from livefilt.runs.markers import check_marks_within, read_marks
+    marks = read_marks(args.marks)
+    ends = [x for x in (duration_s, getattr(engine.source, "length_s", None)) if x]
+    if ends:
+        check_marks_within(marks, min(ends), args.marks)
+    engine.schedule_markers(marks, replace=True)
+    return marks
+
+
+def _typing_input() -> bool:
+    """Read typed markers from a terminal or a pipe (not from files or /dev/null)."""
+    import stat
+    try:
+        return sys.stdin is not None and (sys.stdin.isatty()
+                                          or stat.S_ISFIFO(os.fstat(sys.stdin.fileno()).st_mode))
+    except (OSError, ValueError):
+        return False
+
+
+def _typing(engine, readout):
+    """Distance markers typed on stdin while a headless run goes on (a worker
+    thread under the one error policy; it ends at end of input)."""
+    from livefilt.errors import SettingError
+    from livefilt.runs.markers import parse_distance
+    from livefilt.threads import Worker
+
+    def read():
+        for line in sys.stdin:
+            if readout.tty:
+                readout.typed_line()
+            if not line.strip():
+                continue
+            try:
+                d, note = parse_distance(line)
+            except SettingError as e:
+                readout.say(f"not a marker: {e.allowed}")
+                continue
+            m = engine.add_marker(d, note)
+            readout.say("marker at {:.2f} s: {}{}".format(
+                m["time_s"], f"{d:.3g} m" if d is not None else "target moving",
+                f" ({note})" if note and d is not None else ""))
+
+    w = Worker(read, "livefilt-typing")
+    w.start()
+    return w
+
+
 def _pace_drivers(driver: str) -> set:
     from livefilt.acquire.source import load_driver
     return set(load_driver(driver).options)
@@ -45,24 +114,60 @@ def cmd_run(args) -> int:
     from livefilt.stream.engine import Engine
     from livefilt.readout import Readout
 
+    from livefilt.progress import progress
+
     settings = _settings(args)
     engine = Engine(settings)
-    if args.out:
-        rec = engine.start_recording(args.out)
-        print(f"recording to {rec.folder}", file=sys.stderr)
+    try:
+        if getattr(args, "marks", None):
+            _marks(args, engine, args.duration)
+        if args.out:
+            rec = engine.start_recording(args.out)
+            print(f"recording to {rec.folder}", file=sys.stderr)
+    except BaseException:
+        engine.stop()
+        raise
     readout = Readout(engine)
-    period = 0.25 if readout.tty else 1.0
+    replay = getattr(engine.source, "length_s", None) if engine.source.driver == "file" else None
+    total = min(x for x in (replay, args.duration) if x) if replay else None
+    bar = progress(total, "replay", "s") if total else None
+    quiet = bar is not None and not bar.disable  # the bar stands in for the table meanwhile
+    period = 0.25 if readout.tty or quiet else 1.0
+    if _typing_input():
+        _typing(engine, readout)
     engine.start(args.duration)
+    failed_shown = None
     try:
         while not engine.finished.wait(period):
-            readout.draw()
+            if bar is not None:
+                bar.update(min(engine.stats.index / engine.rate_hz, total) - bar.n)
+            failed = engine.recording_failed
+            if failed and failed != failed_shown:
+                print(f"livefilt: {failed}", file=sys.stderr)
+                readout.reset()
+                failed_shown = failed
+            if not quiet:
+                readout.draw()
+        if bar is not None:
+            bar.close()
         readout.draw()
     except KeyboardInterrupt:
         print("\nstopping…", file=sys.stderr)
     finally:
         engine.stop()
-    if engine.error is not None:  # a LivefiltError is printed in one line by main()
+        if bar is not None:
+            bar.close()
+    if engine.error is not None:  # printed in one line by main()
         raise engine.error
+    left = engine.pending_markers()
+    if getattr(args, "marks", None) and left:
+        print(f"livefilt: {len(left)} marker(s) of {args.marks} fell after the run's end "
+              f"(from {left[0]['time_s']:g} s): not recorded", file=sys.stderr)
+    failed = engine.recording_failed
+    if failed:
+        if failed != failed_shown:
+            print(f"livefilt: {failed}", file=sys.stderr)
+        return 1
     if args.out and engine.stats.frames:
         print(f"saved {engine.stats.frames} frames ({engine.stats.frames / engine.rate_hz:.2f} s) "
               f"to {args.out}", file=sys.stderr)
@@ -91,8 +196,16 @@ def cmd_live(args) -> int:
               "pip install 'livefilt[window]'): showing the terminal read-out instead", file=sys.stderr)
         return cmd_run(args)
     print(CAUTION, file=sys.stderr)
+    extra = {}
+    if getattr(args, "marks", None):
+        import inspect
+        from livefilt.runs.markers import read_marks
+        if "marks" not in inspect.signature(run_window).parameters:
+            raise LivefiltError("--marks: this window cannot take a marker schedule yet; "
+                                "use 'livefilt run --marks FILE' or replay the run with --marks")
+        extra["marks"] = read_marks(args.marks)
     return run_window(_settings(args), duration_s=args.duration, screenshot=args.screenshot,
-                      out=args.out)
+                      out=args.out, **extra)
 
 
 def cmd_sources(args) -> int:
@@ -155,6 +268,8 @@ def build_parser() -> argparse.ArgumentParser:
         sp.add_argument("--fast", action="store_true", help="replay/simulate as fast as possible")
         sp.add_argument("--duration", type=_seconds, metavar="S", help="stop after S seconds of data")
         sp.add_argument("--out", metavar="DIR", help="record the run into a new folder under DIR")
+        sp.add_argument("--marks", metavar="FILE.csv",
+                        help="distance markers at given times: rows time_s,distance_m[,note]")
 
     r = sub.add_parser("run", help="headless processing with a terminal read-out")
     common(r)
@@ -228,6 +343,8 @@ def main(argv=None) -> int:
                         format="livefilt: %(message)s")
     if args.command is None:
         args = parser.parse_args(list(sys.argv[1:] if argv is None else argv) + ["live"])
+    from livefilt.threads import install_excepthook, one_line
+    install_excepthook()
     try:
         return args.func(args)
     except LivefiltError as e:
@@ -235,6 +352,10 @@ def main(argv=None) -> int:
         return 2
     except KeyboardInterrupt:
         return 130
+    except Exception as e:  # the one policy: a line, not a traceback (-v logs it)
+        log.debug("internal error", exc_info=True)
+        print(f"livefilt: {one_line(e)}", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

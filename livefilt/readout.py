@@ -43,6 +43,8 @@ class Readout:
         self.stream = stream or sys.stdout
         self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
         self._drawn = 0
+        self.message = ""  # the last marker echo or hint
+        self._said = ""
 
     def lines(self) -> list[str]:
         e = self.engine
@@ -71,9 +73,32 @@ class Readout:
         names = [c.name for c in e.chains]
         if len(names) >= 2 and all(n in amps for n in names[:2]) and amps[names[1]] > 0 and amps[names[0]] > 0:
             rows.append(f"{names[0]} − {names[1]}: {20 * math.log10(amps[names[0]] / amps[names[1]]):+.2f} dB")
-        if e.recorder is not None:
-            rows.append(f"recording to {e.recorder.folder}  ({e.recorder.bytes_written / 1e6:.1f} MB)")
+        rec = e.recorder
+        if rec is not None and rec.failed:
+            rows.append(f"NOT recording: {rec.failed}")
+        elif rec is not None:
+            lost = f", {rec.dropped_frames} frames dropped (disk too slow)" if rec.dropped_frames else ""
+            rows.append(f"recording to {rec.folder}  ({rec.bytes_written / 1e6:.1f} MB{lost})")
+        if self.message:
+            rows.append(self.message)
         return head + rows
+
+    def say(self, text: str) -> None:
+        """Echo a typed marker (or a hint) with the next drawing."""
+        self.message = text
+        if not self.tty:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+            self._said = text
+
+    def typed_line(self) -> None:
+        """The terminal moved down a line when the user pressed Enter."""
+        if self._drawn:
+            self._drawn += 1
+
+    def reset(self) -> None:
+        """Something else was printed: draw the table afresh below it."""
+        self._drawn = 0
 
     def draw(self) -> None:
         lines = self.lines()

@@ -75,6 +75,14 @@ class Source:
     reference_hint : dict or None
         What the source knows about the modulation (``frequency_hz``,
         ``phase_deg``), e.g. from a firmware's self-description.
+    markers : list of dict
+        Distance markers the source knows in advance (``time_s`` of its data,
+        ``distance_m`` or none while the target moves, ``note``): a simulated
+        scene's truth, a replayed run's own markers.  The engine adds each one
+        when its time has been processed.
+    length_s : float or None
+        How long the source's data lasts when it ends by itself (a file, a
+        walk-away scene); None for a live device.
     """
 
     driver: ClassVar[str] = ""
@@ -87,6 +95,8 @@ class Source:
     device: str = ""
     realtime: bool = True
     reference_hint: dict | None = None
+    markers: list = []
+    length_s: float | None = None
 
     # -- construction --------------------------------------------------
     @classmethod

@@ -12,7 +12,7 @@ A run folder holds
   :data:`RESULT_COLUMNS`; amplitudes in the input's units (volts where the
   driver is calibrated, else full scale), RMS.
 
-:class:`RunWriter` only writes what it is given; :func:`read_run` returns a
+:class:`RunWriter` only writes what it is given, from its own thread; :func:`read_run` returns a
 :class:`Run` with the config, raw samples, results and markers.
 """
 
@@ -23,7 +23,9 @@ import io
 import math
 import os
 import shutil
+import threading
 import tomllib
+from collections import deque
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -63,7 +65,20 @@ def new_run_folder(parent, label: str = "") -> Path:
 
 
 class RunWriter:
-    """Writes one run folder.
+    """Writes one run folder from its own thread.
+
+    The caller (the engine thread) only copies blocks and rows into a bounded
+    queue; the recorder thread formats and writes them, so a slow disk never
+    stalls processing.  When the queue is full a live source's data is
+    dropped and counted (``dropped_frames``, ``dropped_rows``, in run.toml's
+    counts and the read-outs); a source that can wait (a file, a fast
+    simulation) waits instead (``wait_when_full``), so nothing is lost.
+
+    Any write error (disk full, file too large, device gone) stops the
+    recording: :attr:`failed` holds one line ("recording stopped after 7.0 s:
+    no space left on device: ..."), the files are closed (raw.wav and
+    results.csv readable up to the last flush), the rest is discarded and the
+    caller keeps running.
 
     Parameters
     ----------
@@ -75,11 +90,17 @@ class RunWriter:
         The source's :meth:`~livefilt.acquire.source.Source.info`.
     rate_hz : float
     channels : int
+    wait_when_full : bool
+        Wait for room instead of dropping (sources that are not real time).
+    queue_s : float
+        Raw data the queue holds before it is full, seconds (at least 1 MB).
     """
 
     FLUSH_EVERY_S = 1.0
 
-    def __init__(self, folder, config_toml: str, source_info: dict, rate_hz: float, channels: int):
+    def __init__(self, folder, config_toml: str, source_info: dict, rate_hz: float, channels: int,
+                 wait_when_full: bool = False, queue_s: float = 4.0):
+        from livefilt.threads import Worker
         self.folder = Path(folder)
         try:
             self.folder.mkdir(parents=True, exist_ok=True)
@@ -97,19 +118,132 @@ class RunWriter:
         self.markers: list[dict] = []
         self.counts: dict[str, Any] = {}
         self.rows = 0
+        self.failed: str | None = None
+        self.dropped_frames = 0
+        self.dropped_rows = 0
+        self.wait_when_full = bool(wait_when_full)
+        self._budget = max(1 << 20, int(queue_s * rate_hz * channels * 4))
+        self._queued = 0
+        self._items: deque = deque()
+        self._cv = threading.Condition()
+        self._closing = False
         self._since_flush = 0
+        self._bytes = self._wav.bytes_written
         self._write_meta()
+        self._thread = Worker(self._drain, "livefilt-recorder", on_error=self._failed_in_thread)
+        self._thread.start()
 
-    # -- writing -------------------------------------------------------
+    # -- the caller's side (engine thread): copies only --------------------
     def write_block(self, frames: np.ndarray) -> None:
-        """Append raw frames (n, channels)."""
-        self._wav.write(frames)
-        self._since_flush += frames.shape[0]
-        if self._since_flush >= self.rate_hz * self.FLUSH_EVERY_S:
-            self.flush()
+        """Queue raw frames (n, channels); copied, so the caller may reuse its buffer."""
+        if self.failed:
+            return
+        a = np.array(frames, dtype="<f4")
+        if not self._put(("block", a), a.nbytes):
+            self.dropped_frames += a.shape[0]
 
     def write_rows(self, chain: str, rows: np.ndarray) -> None:
-        """Append detector rows (structured array with READING_DTYPE fields)."""
+        """Queue detector rows (structured array with READING_DTYPE fields)."""
+        if self.failed or not len(rows):
+            return
+        r = rows.copy()
+        if not self._put(("rows", chain, r), r.nbytes):
+            self.dropped_rows += len(r)
+
+    def add_marker(self, time_s: float, distance_m: float | None, note: str = "") -> dict:
+        """Record a distance marker at acquisition time ``time_s``; run.toml is
+        rewritten by the recorder thread at once (a marker is never dropped)."""
+        m = make_marker(time_s, distance_m, note)
+        self.markers.append(m)
+        self._put(("meta",), 0, force=True)
+        return m
+
+    def _put(self, item, nbytes: int, force: bool = False) -> bool:
+        with self._cv:
+            if self._closing:
+                return False
+            while self._queued + nbytes > self._budget and not force and self.failed is None:
+                if not self.wait_when_full:
+                    return False
+                self._cv.wait(0.5)
+            self._items.append(item)
+            self._queued += nbytes
+            self._cv.notify_all()
+            return True
+
+    def flush(self) -> None:
+        """Ask the recorder thread to push what it has to disk now."""
+        self._put(("flush",), 0, force=True)
+
+    def close(self, counts: dict | None = None, timeout: float = 30.0) -> None:
+        """Finish writing what is queued, close the files and write the final
+        run.toml with ``counts``.  Returns within ``timeout`` seconds whatever
+        the disk does (a recorder still stuck then is left as a daemon)."""
+        if counts:
+            self.counts.update(counts)
+        with self._cv:
+            if not self._closing:
+                self._items.append(("close",))
+                self._closing = True
+                self._cv.notify_all()
+        self._thread.join(timeout)
+        if self._thread.is_alive() and self.failed is None:
+            self.failed = (f"recording did not finish writing within {timeout:g} s "
+                           f"(the disk stopped answering): {self.folder}")
+
+    @property
+    def bytes_written(self) -> int:
+        return self._bytes
+
+    @property
+    def frames(self) -> int:
+        return self._wav.frames
+
+    @property
+    def backlog_s(self) -> float:
+        """Raw data waiting in the queue, seconds."""
+        return self._queued / (4.0 * self._wav.channels * self.rate_hz)
+
+    def free_bytes(self) -> int:
+        return shutil.disk_usage(self.folder).free
+
+    # -- the recorder thread ------------------------------------------------
+    def _drain(self) -> None:
+        while True:
+            with self._cv:
+                while not self._items:
+                    self._cv.wait()
+                item = self._items.popleft()
+                size = item[1].nbytes if item[0] == "block" else (item[2].nbytes if item[0] == "rows" else 0)
+                self._queued -= size
+                self._cv.notify_all()
+            kind = item[0]
+            if kind == "close":
+                self._finish()
+                return
+            if self.failed and kind != "meta":
+                continue  # discard: the recording has stopped (markers still go to run.toml)
+            try:
+                if kind == "block":
+                    self._write_block(item[1])
+                elif kind == "rows":
+                    self._write_rows(item[1], item[2])
+                elif kind == "meta":
+                    self._write_meta()
+                elif kind == "flush":
+                    self._flush()
+            except OSError as e:
+                if not self.failed:
+                    self._stop_on(e, {"block": "raw.wav", "rows": "results.csv"}.get(kind, "run.toml"))
+
+    def _write_block(self, frames: np.ndarray) -> None:
+        self._wav.write(frames)
+        self._since_flush += frames.shape[0]
+        self._bytes = self._wav.bytes_written + self._csv_file.tell()
+        if self._since_flush >= self.rate_hz * self.FLUSH_EVERY_S:
+            self._flush()
+
+    def _write_rows(self, chain: str, rows: np.ndarray) -> None:
         w, fs = self._csv.writerow, self.rate_hz
         for r in rows:
             w((f"{r['index'] / fs:.6f}", chain, _g(r["amplitude"]), _g(r["phase_deg"]),
@@ -117,38 +251,58 @@ class RunWriter:
                _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"])))
         self.rows += len(rows)
 
-    def add_marker(self, time_s: float, distance_m: float | None, note: str = "") -> dict:
-        """Record a distance marker at acquisition time ``time_s``; saved at once."""
-        m = make_marker(time_s, distance_m, note)
-        self.markers.append(m)
-        self._write_meta()
-        return m
-
-    def flush(self) -> None:
+    def _flush(self) -> None:
         self._wav.flush()
         self._csv_file.flush()
         self._since_flush = 0
 
-    def close(self, counts: dict | None = None) -> None:
-        """Close the files and write the final run.toml with ``counts``."""
-        if counts:
-            self.counts.update(counts)
+    def _stop_on(self, e: BaseException, name: str = "") -> None:
+        """A write failed: one line, files closed and readable, the rest discarded."""
+        from livefilt.threads import one_line
+        where = "" if getattr(e, "filename", None) or not name else f": {self.folder / name}"
+        self._stopped_because(one_line(e) + where)
+
+    def _failed_in_thread(self, worker) -> None:
+        """Anything else ended the recorder thread: the same, and no more queueing."""
+        self._stopped_because(worker.error_line, closing=True)
+
+    def _stopped_because(self, why: str, closing: bool = False) -> None:
+        if self.failed is None:
+            self.failed = f"recording stopped after {self._wav.frames / self.rate_hz:.1f} s: {why}"
+        self.counts["recording_error"] = self.failed
+        self._close_files()
+        try:
+            self._write_meta()
+        except OSError:
+            pass  # the previous run.toml stays (it is replaced atomically)
+        with self._cv:
+            self._closing = self._closing or closing
+            self._cv.notify_all()
+
+    def _close_files(self) -> None:
+        for close in (self._wav.close, self._csv_file.close):
+            try:
+                close()
+            except (OSError, ValueError):
+                pass
+        _trim_wav(self._wav.path, self._wav.bytes_written)
+
+    def _finish(self) -> None:
+        self.counts.update(recorder_dropped_frames=self.dropped_frames,
+                           recorder_dropped_rows=self.dropped_rows)
         self.stopped = _utc_now()
-        self._wav.close()
-        self._csv_file.close()
-        self._write_meta()
-
-    @property
-    def bytes_written(self) -> int:
-        return self._wav.bytes_written + self._csv_file.tell() if not self._csv_file.closed \
-            else self._wav.bytes_written
-
-    @property
-    def frames(self) -> int:
-        return self._wav.frames
-
-    def free_bytes(self) -> int:
-        return shutil.disk_usage(self.folder).free
+        if self.failed:
+            try:
+                self._write_meta()
+            except OSError:
+                pass
+            return
+        try:
+            self._wav.close()
+            self._csv_file.close()
+            self._write_meta()
+        except OSError as e:
+            self._stop_on(e, "run.toml")
 
     def _write_meta(self) -> None:
         run = {"software": "livefilt", "version": __version__,
@@ -159,12 +313,33 @@ class RunWriter:
             run["duration_s"] = round(self._wav.frames / self.rate_hz, 6)
         doc = {"run": run, "source_info": _plain(self.source_info),
                "counts": _plain(self.counts), "config": self.config,
-               "markers": self.markers}
+               "markers": list(self.markers)}
         text = dumps(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
                                  "results.csv the detector rows.")
         tmp = self.folder / "run.toml.tmp"
-        tmp.write_text(text, encoding="utf-8")
-        os.replace(tmp, self.folder / "run.toml")
+        try:
+            tmp.write_text(text, encoding="utf-8")
+            os.replace(tmp, self.folder / "run.toml")
+        except OSError:
+            try:
+                tmp.unlink()
+            except OSError:
+                pass
+            raise
+
+
+def _trim_wav(path: Path, size: int) -> None:
+    """Cut a partly written last block (a write that failed half way) off raw.wav
+    so the file ends where its header's data chunk ends; fix the RIFF size."""
+    try:
+        if path.stat().st_size <= size or size > 0xFFFFFFFF:
+            return
+        with open(path, "r+b") as f:
+            f.truncate(size)
+            f.seek(4)
+            f.write((size - 8).to_bytes(4, "little"))
+    except OSError:
+        pass  # the stale tail is still read as data by tolerant readers
 
 
 def make_marker(time_s: float, distance_m: float | None, note: str = "") -> dict:

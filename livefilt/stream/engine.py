@@ -30,7 +30,8 @@ import numpy as np
 from livefilt.stream.chain import Chain
 from livefilt.config import ChainSettings, Settings, parse_chain
 from livefilt.dsp.detect import ReferenceSpec
-from livefilt.errors import SettingError
+from livefilt.errors import SettingError, SourceError
+from livefilt.threads import Worker
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
 from livefilt.acquire.ring import Ring
 from livefilt.dsp.sections import FilterBank
@@ -120,6 +121,7 @@ class Engine:
         self.stats = EngineStats()
         self.latest: dict[str, np.void] = {}
         self.recorder: RunWriter | None = None
+        self.recording_error: str | None = None  # the last recording's failure, one line
         self.listeners: list = []  # callables (engine, start_index, raw, outputs, rows)
         self._pending: list[tuple[int, ChainSettings]] = []
         self._pending_lock = threading.Lock()
@@ -130,6 +132,9 @@ class Engine:
         self._stop_at: int | None = None
         self.error: BaseException | None = None
         self.finished = threading.Event()
+        # markers known in advance (the source's truth or replayed markers, --marks)
+        self._schedule: list[dict] = []
+        self.schedule_markers(getattr(self.source, "markers", None) or [])
 
     # -- construction helpers -------------------------------------------
     def _channel_index(self, chain: ChainSettings, i: int) -> int:
@@ -187,9 +192,23 @@ class Engine:
             s = replace(s, reference=self.reference)
         return s
 
-    def add_marker(self, distance_m: float | None, note: str = "") -> dict:
-        """Mark the current acquisition time with the target distance and a note."""
-        t = self.stats.index / self.rate_hz
+    def schedule_markers(self, marks, replace: bool = False) -> None:
+        """Add markers at given times of the run's data (``time_s``,
+        ``distance_m`` or none while moving, ``note``); each is added when the
+        engine has processed its time.  ``replace`` drops the schedule so far
+        (a replayed run's own markers).  Call before :meth:`start`."""
+        keep = [{k: v for k, v in m.items() if k in ("time_s", "distance_m", "note")} for m in marks]
+        base = [] if replace else self._schedule
+        self._schedule = sorted(base + keep, key=lambda m: m["time_s"])
+
+    def pending_markers(self) -> list[dict]:
+        """Scheduled markers whose time has not been reached (yet)."""
+        return list(self._schedule)
+
+    def add_marker(self, distance_m: float | None, note: str = "", time_s: float | None = None) -> dict:
+        """Mark the current acquisition time (or ``time_s``) with the target
+        distance (None: the target is moving) and a note."""
+        t = self.stats.index / self.rate_hz if time_s is None else float(time_s)
         with self._rec_lock:
             if self.recorder is not None:
                 m = self.recorder.add_marker(t, distance_m, note)
@@ -208,7 +227,8 @@ class Engine:
             info["reference"] = self.reference.to_mapping() if self.reference else None
             info["start_index"] = self.stats.index
             self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
-                                      self.rate_hz, self.source.channels)
+                                      self.rate_hz, self.source.channels,
+                                      wait_when_full=not self.source.realtime)
             return self.recorder
 
     def stop_recording(self) -> RunWriter | None:
@@ -216,12 +236,17 @@ class Engine:
             rec, self.recorder = self.recorder, None
         if rec is not None:
             rec.close(self.counts())
+            if rec.failed:
+                self.recording_error = rec.failed
         return rec
 
     def counts(self) -> dict:
         st = self.stats
         d = {"frames_processed": st.frames, "dropped_frames": st.dropped,
              "ring_overruns": st.overruns, "device_events": st.device_events}
+        rec = self.recorder
+        if rec is not None:
+            d.update(recorder_dropped_frames=rec.dropped_frames, recorder_dropped_rows=rec.dropped_rows)
         d.update({f"source_{k}": v for k, v in self.source.status().items()
                   if isinstance(v, (int, float, str, bool))})
         return d
@@ -230,7 +255,7 @@ class Engine:
     def start(self, duration_s: float | None = None) -> None:
         """Start the source and the engine thread; return at once."""
         self._begin(duration_s)
-        self._thread = threading.Thread(target=self._loop, name="livefilt-engine", daemon=True)
+        self._thread = Worker(self._loop, "livefilt-engine")
         self._thread.start()
 
     def run(self, duration_s: float | None = None) -> None:
@@ -264,18 +289,32 @@ class Engine:
         finally:
             self.stop_recording()
 
+    @property
+    def recording_failed(self) -> str | None:
+        """One line when the current or last recording stopped on a write error."""
+        rec = self.recorder
+        return (rec.failed if rec is not None else None) or self.recording_error
+
     def _loop(self) -> None:
         try:
             while not self._stop.is_set():
                 if not self.step():
                     if self.ring.closed or (self._stop_at is not None and self.stats.index >= self._stop_at):
                         break
+            died = getattr(getattr(self.source, "_thread", None), "error_line", None)
+            if died and self.error is None:  # the source's worker failed and closed the ring
+                raise SourceError(f"{self.source.driver}: the source stopped: {died}")
         except BaseException as e:  # reported by the caller; the recording is closed below
             self.error = e
             log.debug("engine stopped on error", exc_info=True)
         finally:
-            self._shutdown()
-            self.finished.set()
+            try:
+                self._shutdown()
+            except BaseException as e:  # the thread policy: keep it, never hang the waiter
+                self.error = self.error or e
+                log.debug("engine shutdown failed", exc_info=True)
+            finally:
+                self.finished.set()
 
     def step(self, timeout: float = 0.2) -> bool:
         """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
@@ -346,6 +385,9 @@ class Engine:
                     for c, rows in zip(self.chains, rows_all):
                         if len(rows):
                             rec.write_rows(c.name, rows)
+        while self._schedule and self._schedule[0]["time_s"] * self.rate_hz <= st.index:
+            m = self._schedule.pop(0)
+            self.add_marker(m.get("distance_m"), m.get("note", ""), m["time_s"])
         for fn in self.listeners:
             fn(self, start, data, self._y[:, :n], rows_all)
         st.busy_s += time.perf_counter() - t0

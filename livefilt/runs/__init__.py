@@ -1,0 +1,2 @@
+"""Runs on disk: run folders, their WAV samples and their markers
+(:mod:`.record`, :mod:`.wavio`). Knows nothing of filters or the engine."""
