@@ -271,7 +271,7 @@ def _why(c: Candidate, units: str) -> str:
 
 
 def _hz(f: float) -> str:
-    return f"{f / 1000:.2f} kHz" if f >= 1000 else f"{f:.1f} Hz"
+    return f"{f / 1000:.2f} kHz" if f >= 999.5 else f"{f:.1f} Hz"
 
 
 

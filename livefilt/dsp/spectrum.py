@@ -388,6 +388,6 @@ def _label(lines: list[Line], mains_hz: float, spec: Density, known: dict) -> No
 
 
 def _hz(x: float) -> str:
-    if abs(x) >= 1000:
+    if abs(x) >= 999.5:
         return f"{x / 1000:.2f} kHz"
     return f"{x:.1f} Hz" if abs(x) < 100 else f"{x:.0f} Hz"

@@ -120,3 +120,29 @@ def test_a_run_folder_is_surveyed_and_the_report_lands_beside_it(tmp_path, capsy
     assert not (run / f"{run.name}-survey").exists()  # nothing written into the run
     lines = capsys.readouterr().out.splitlines()
     assert lines[0].startswith("mains 50 Hz") and lines[1] == f"recommended modulation: {got['recommended_hz']:g} Hz"
+
+
+def test_a_config_front_end_is_used_through_its_response(tmp_path, monkeypatch):
+    """The wiring for ``settings.frontend``: the survey imports
+    livefilt.dsp.frontend only then and calls ``response(frontend, freqs_hz)``.
+    The front end here is an invented first-order corner at 10 kHz, and the
+    module a stand-in with that one function."""
+    import sys
+    import types
+
+    from livefilt.config import demo_config
+
+    invented_ambient(tmp_path / "a.wav", seconds=6.0)
+    seen = []
+
+    def response(frontend, freqs_hz):
+        seen.append(frontend)
+        return 1 / (1 + 1j * np.asarray(freqs_hz) / frontend["corner_hz"])
+
+    monkeypatch.setitem(sys.modules, "livefilt.dsp.frontend", types.SimpleNamespace(response=response))
+    demo = demo_config()
+    settings = types.SimpleNamespace(source=demo.source, chains=demo.chains,
+                                     frontend={"corner_hz": 10000.0})
+    got = run_survey(tmp_path / "a.wav", tmp_path / "out", settings)
+    assert seen and seen[0] == {"corner_hz": 10000.0}
+    assert all(c["hz"] <= 10000 and c["frontend_gain_db"] >= -3 for c in got["candidates"])
