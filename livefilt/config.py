@@ -25,6 +25,8 @@ from typing import Any, Mapping
 
 from livefilt.dsp.design import StageSpec
 from livefilt.dsp.detect import DetectorSpec, ReferenceSpec
+from livefilt.dsp.frontend import Frontend
+from livefilt.dsp.predict import DesignSpec
 from livefilt.errors import SettingError
 from livefilt.tomlout import dumps
 
@@ -35,7 +37,9 @@ __all__ = ["Settings", "SourceSettings", "ChainSettings", "OutputSettings",
 #: re-checks against the real channel count.
 MAX_CHANNELS = 64
 
-_TOP = {"source", "reference", "chains", "output"}
+_TOP = {"source", "reference", "chains", "output", "frontend", "design"}
+#: Mains frequencies the world uses (REFERENCES row 8; IEC 60196).
+MAINS_HZ = (50.0, 60.0)
 _SOURCE_COMMON = {"driver", "rate_hz", "block"}
 _CHAIN = {"name", "input", "stages", "detector"}
 _OUTPUT = {"interval_s"}
@@ -90,11 +94,24 @@ class Settings:
     chains: tuple[ChainSettings, ...]
     output: OutputSettings
     origin: str = "<built-in demo>"
+    #: The analog stages on the board (``[frontend]``), None when the config has none.
+    frontend: Frontend | None = None
+    #: ``[design]``: extra interferer lines and a measured point for predictions.
+    design: DesignSpec = field(default_factory=DesignSpec)
+    #: Mains frequency, Hz (``mains_hz`` in ``[reference]`` or ``[source]``; 50 or 60).
+    mains_hz: float = 50.0
 
     def to_mapping(self) -> dict:
         d: dict[str, Any] = {"source": self.source.to_mapping()}
         if self.reference is not None:
             d["reference"] = self.reference.to_mapping()
+        if self.mains_hz != 50.0 and "mains_hz" not in d["source"]:
+            d["reference" if self.reference is not None else "source"]["mains_hz"] = _num(self.mains_hz)
+        if self.frontend is not None:
+            d["frontend"] = self.frontend.to_mapping()
+        design = self.design.to_mapping()
+        if design:
+            d["design"] = design
         d["chains"] = [c.to_mapping() for c in self.chains]
         d["output"] = self.output.to_mapping()
         return d
@@ -203,13 +220,15 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
         The first invalid value, with its full field path.
     """
     _unknown(doc, _TOP, "")
-    source = parse_source(_table(doc, "source", "source"))
-    fs = source.rate_hz
+    src_table = _table(doc, "source", "source")
     ref_table = doc.get("reference")
+    if ref_table is not None and not isinstance(ref_table, Mapping):
+        raise SettingError("reference", ref_table, "must be a table")
+    mains, src_table, ref_table = _mains(src_table, ref_table)
+    source = parse_source(src_table)
+    fs = source.rate_hz
     reference = None
     if ref_table is not None:
-        if not isinstance(ref_table, Mapping):
-            raise SettingError("reference", ref_table, "must be a table")
         try:
             reference = ReferenceSpec.from_mapping(ref_table, fs, channels)
         except SettingError as e:
@@ -234,7 +253,46 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
     if interval * fs < 1 or interval > 60:
         raise SettingError("output.interval_s", out_t.get("interval_s"),
                            f"must be between one sample period ({1 / fs:.3g} s) and 60 s")
-    return Settings(source, reference, chains, OutputSettings(interval), origin)
+    frontend = None
+    if "frontend" in doc:
+        try:
+            frontend = Frontend.from_mapping(doc["frontend"])
+        except SettingError as e:
+            raise e.within("frontend") from None
+    try:
+        design = DesignSpec.from_mapping(doc.get("design", {}))
+    except SettingError as e:
+        raise e.within("design") from None
+    return Settings(source, reference, chains, OutputSettings(interval), origin,
+                    frontend, design, mains)
+
+
+def _mains(src: Mapping, ref: Mapping | None) -> tuple[float, Mapping, Mapping | None]:
+    """``mains_hz`` from ``[reference]`` or ``[source]`` (50 or 60, default 50).
+
+    Taken out of both tables, except that a driver with its own ``mains_hz``
+    option (the simulated bench) keeps it in ``[source]``.
+    """
+    from livefilt.acquire.source import driver_names, load_driver
+
+    found = {}
+    for name, table in (("source", src), ("reference", ref)):
+        if table is not None and "mains_hz" in table:
+            v = table["mains_hz"]
+            if isinstance(v, bool) or v not in MAINS_HZ:
+                raise SettingError(f"{name}.mains_hz", v, "must be 50 or 60 (Hz)")
+            found[name] = float(v)
+    if len(set(found.values())) > 1:
+        raise SettingError("reference.mains_hz", ref["mains_hz"],
+                           f"differs from source.mains_hz = {src['mains_hz']!r}: give it once")
+    mains = next(iter(found.values()), 50.0)
+    driver = src.get("driver", "simulated")
+    keeps = driver in driver_names() and "mains_hz" in load_driver(driver).options
+    if "source" in found and not keeps:
+        src = {k: v for k, v in src.items() if k != "mains_hz"}
+    if "reference" in found:
+        ref = {k: v for k, v in ref.items() if k != "mains_hz"}
+    return mains, src, ref
 
 
 def _self_referenced(source: SourceSettings) -> bool:

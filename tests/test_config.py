@@ -88,3 +88,33 @@ def test_cli_reports_one_line_and_exit_2(tmp_path):
     assert len(lines) == 1 and "Traceback" not in r.stderr
     assert lines[0].startswith("livefilt: chains[0].stages[0].cutoff_hz = 30000")
     assert "24000" in lines[0]
+
+
+@pytest.mark.parametrize("mutate, field, allowed", [
+    (lambda d: d["frontend"]["stages"][0].update(c_farad="-1n"),
+     r"frontend\.stages\[0\]\.c_farad", "> 0"),
+    (lambda d: d["frontend"].update(stages=[]), r"frontend\.stages", "list of stage tables"),
+    (lambda d: d["design"].update(snr_db=100), r"design\.snr_db = 100", "-20 to 80"),
+    (lambda d: d["design"].update(extra=1), r"design\.extra", "unknown key"),
+    (lambda d: d["source"].update(mains_hz=55), r"source\.mains_hz = 55", "50 or 60"),
+    (lambda d: d["reference"].update(mains_hz=60), r"reference\.mains_hz = 60", "give it once"),
+])
+def test_front_end_and_design_tables_name_the_field(mutate, field, allowed):
+    d = demo_doc()
+    mutate(d)
+    with pytest.raises(SettingError, match=field) as e:
+        parse_config(d)
+    assert allowed in str(e.value) and "\n" not in str(e.value)
+
+
+def test_mains_hz_from_reference_or_source():
+    d = demo_doc()
+    d["reference"]["mains_hz"] = 50
+    assert parse_config(d).mains_hz == 50.0
+    d = demo_doc()
+    d["source"] = {"driver": "soundcard", "rate_hz": 48000, "drive": {"frequency_hz": 1370.0},
+                   "mains_hz": 60}
+    s = parse_config(d)
+    assert s.mains_hz == 60.0 and "mains_hz" not in s.source.options  # not the card's option
+    assert parse_config(s.to_mapping()).mains_hz == 60.0
+    assert demo_config().mains_hz == 50.0 and demo_config().source.options["mains_hz"] == 50.0

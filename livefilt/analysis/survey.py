@@ -44,7 +44,7 @@ from livefilt.analysis.linefigure import draw_density
 from livefilt.analysis.capture import capture, channel_index, detector_enbw
 from livefilt.analysis.report import ReportFolder, figure
 from livefilt.config import Settings, demo_config, load_config
-from livefilt.dsp import spectrum
+from livefilt.dsp import frontend, spectrum
 from livefilt.errors import SettingError
 from livefilt.units import si
 
@@ -106,7 +106,8 @@ def run_survey(recording, out, settings: Settings | None = None, drift_pct: floa
     """Read the recording, find its lines, rank candidates, write the report.
 
     ``frontend_gain``: a callable ``freqs_hz -> gain`` (complex or magnitude);
-    when None and ``settings.frontend`` is set, the front end's response.
+    when None and ``settings.frontend`` is set, the front end's response
+    (:func:`livefilt.dsp.frontend.response`).
     Returns the TOML document (with ``verdict``, the terminal lines).
     """
     if not 0 <= drift_pct < 10:
@@ -128,12 +129,11 @@ def run_survey(recording, out, settings: Settings | None = None, drift_pct: floa
     nominal, measured = spectrum.measure_mains(spec, lines)
     if nominal:
         lines = spectrum.find_lines(spec, mains_hz=measured)
-    grid_mains = float(nominal or settings.source.options.get("mains_hz", 50))
+    grid_mains = float(nominal or getattr(settings, "mains_hz", None) or 50.0)
     enbw = detector_enbw(settings, fs)
     if frontend_gain is None and getattr(settings, "frontend", None) is not None:
-        from livefilt.dsp import frontend as _frontend  # lazily: only a config with [frontend] needs it
         fe = settings.frontend
-        frontend_gain = lambda f: _frontend.response(fe, f)  # noqa: E731
+        frontend_gain = lambda f: frontend.response(fe, f)  # noqa: E731
     f_max = USABLE_FRACTION * fs
     if digitizer_rate_hz:
         f_max = min(f_max, USABLE_FRACTION * digitizer_rate_hz)

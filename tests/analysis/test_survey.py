@@ -122,27 +122,25 @@ def test_a_run_folder_is_surveyed_and_the_report_lands_beside_it(tmp_path, capsy
     assert lines[0].startswith("mains 50 Hz") and lines[1] == f"recommended modulation: {got['recommended_hz']:g} Hz"
 
 
-def test_a_config_front_end_is_used_through_its_response(tmp_path, monkeypatch):
-    """The wiring for ``settings.frontend``: the survey imports
-    livefilt.dsp.frontend only then and calls ``response(frontend, freqs_hz)``.
-    The front end here is an invented first-order corner at 10 kHz, and the
-    module a stand-in with that one function."""
-    import sys
-    import types
-
-    from livefilt.config import demo_config
+def test_a_config_front_end_keeps_candidates_below_its_corner(tmp_path):
+    """A ``[frontend]`` table (an invented 15 kOhm / 1 nF low-pass after a DC block):
+    fc = 1/(2 pi R C) = 10.61 kHz (the RC law, common practice); every candidate
+    stays within 3 dB of the front end's largest gain, so below that corner."""
+    from livefilt.config import demo_config, parse_config
+    from livefilt.dsp import frontend
 
     invented_ambient(tmp_path / "a.wav", seconds=6.0)
-    seen = []
-
-    def response(frontend, freqs_hz):
-        seen.append(frontend)
-        return 1 / (1 + 1j * np.asarray(freqs_hz) / frontend["corner_hz"])
-
-    monkeypatch.setitem(sys.modules, "livefilt.dsp.frontend", types.SimpleNamespace(response=response))
-    demo = demo_config()
-    settings = types.SimpleNamespace(source=demo.source, chains=demo.chains,
-                                     frontend={"corner_hz": 10000.0})
+    doc = demo_config().to_mapping()
+    doc["frontend"] = {"stages": [
+        {"type": "rc", "name": "DC block", "response": "highpass", "r_ohm": "10k", "c_farad": "100n"},
+        {"type": "rc", "name": "amplifier pole", "r_ohm": "15k", "c_farad": "1n"}]}
+    settings = parse_config(doc)
     got = run_survey(tmp_path / "a.wav", tmp_path / "out", settings)
-    assert seen and seen[0] == {"corner_hz": 10000.0}
-    assert all(c["hz"] <= 10000 and c["frontend_gain_db"] >= -3 for c in got["candidates"])
+    fc = 1 / (2 * math.pi * 15e3 * 1e-9)
+    assert got["candidates"]
+    for c in got["candidates"]:
+        assert c["hz"] <= fc and c["frontend_gain_db"] >= -3.0
+        # the floor before the front end: divided by the gain relative to its largest
+        assert c["referred_floor"] == pytest.approx(c["floor"] * 10 ** (-c["frontend_gain_db"] / 20))
+    g = np.abs(frontend.response(settings.frontend, [c["hz"] for c in got["candidates"]]))
+    assert np.all(g >= 0.5 * np.abs(frontend.response(settings.frontend, [2000.0]))[0])
