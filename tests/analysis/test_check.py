@@ -162,15 +162,27 @@ def test_sound_card_plays_and_measures_its_test_tone(tmp_path, sound):
                              "amplitude": 0.8}},
         "chains": [{"name": "A", "stages": [],
                     "detector": {"type": "lockin", "time_constant_s": 0.05}}]})
-    res = run_check(settings, tmp_path, duration_s=3.0)
-    got = _read(tmp_path)
+    # a stall of the shared machine shows as counted flags or drops: such a take is
+    # reported, not wrong, and is taken again (as tests/drivers/test_soundcard.py does);
+    # a take reported clean must pass every check
+    seen = []
+    for attempt in range(3):
+        out = tmp_path / f"take{attempt}"
+        res = run_check(settings, out, duration_s=3.0)
+        got = _read(out)
+        s = got["stream"]
+        trouble = {k: s[k] for k in ("input_overflows", "output_underflows", "dropped_frames",
+                                     "device_events") if s.get(k)}
+        if not trouble:
+            break
+        seen.append(trouble)
+    else:
+        pytest.fail(f"every take had trouble the driver reported: {seen}")
     t = got["tone"]
     print(res["verdict"])
     assert t["played"] and t["hz"] == pytest.approx(997.0, abs=1e-6)
     assert t["amplitude_fs"] == pytest.approx(10 ** (-1 / 20), rel=1e-6)
     # float32 carries 24 significant bits: far beyond any sound card's converter
     assert t["sinad_db"] > 120 and t["enob_bits"] > 19
-    s = got["stream"]
-    assert s["input_overflows"] == 0 and s["dropped_frames"] == 0
     assert "delivery_jitter_s" in s and s["longest_gap_s"] < 1.0
     assert abs(s["rate_ppm"]) <= 3 * s["rate_ppm_uncertainty"] + 200
