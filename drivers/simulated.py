@@ -53,6 +53,12 @@ adc_bits : int, default 16
 sky : "clouds" | "clear", default "clouds"
     "clear" holds the sunlight steady (a known, constant noise density, as
     :meth:`Scene.white_density_fs` computes it).
+led_ramp_hz_per_s : float, default 0
+    A free-running LED driver warming up: the chopping frequency ramps by this
+    much per second from ``led_hz`` (the LED channel follows it).
+led_step_s, led_step_fraction : float, optional
+    At ``led_step_s`` the chopping frequency jumps by ``led_step_fraction``
+    (e.g. 0.01 for 1 %), as when a driver's supply changes.
 """
 
 from __future__ import annotations
@@ -221,12 +227,17 @@ class SimulatedSource(Source):
         "move_s": "walk-away scene: seconds moving between distances (default 1)",
         "sky": '"clouds" (default, passing clouds) or "clear" (steady sunlight)',
         "adc_bits": "simulated ADC resolution, 8 to 24 bits (default 16)",
+        "led_ramp_hz_per_s": "LED frequency drift in Hz per second (default 0)",
+        "led_step_s": "time of a step of the LED frequency, s (default none)",
+        "led_step_fraction": "size of that step relative to led_hz (default 0.01)",
     }
 
     def __init__(self, rate_hz: float, seed: int = 7, pace: str = "realtime",
                  led_hz: float = 1370.0, mains_hz: float = 50.0, target: str = "canopy",
                  distance_m: float | None = None, walk_m=None, hold_s: float = 4.0,
-                 move_s: float = 1.0, sky: str = "clouds", adc_bits: int = 16):
+                 move_s: float = 1.0, sky: str = "clouds", adc_bits: int = 16,
+                 led_ramp_hz_per_s: float = 0.0, led_step_s: float | None = None,
+                 led_step_fraction: float = 0.01):
         self.rate_hz = float(rate_hz)
         self.channels = 2
         self.channel_names = ["photodiode", "led"]
@@ -245,6 +256,8 @@ class SimulatedSource(Source):
         self.length_s = self.scene.walk_s
         self.reference_hint = {"frequency_hz": led_hz, "phase_deg": 0.0}
         self._seed = seed
+        self.led_ramp, self.led_step_s, self.led_step_fraction = (
+            float(led_ramp_hz_per_s), led_step_s, float(led_step_fraction))
         self._cloud_phase = np.random.default_rng([seed, 99]).uniform(0, 2 * np.pi, 3)
         self._thread: threading.Thread | None = None
         self._stop = threading.Event()
@@ -297,8 +310,21 @@ class SimulatedSource(Source):
         sky = options.get("sky", "clouds")
         if sky not in ("clouds", "clear"):
             raise SettingError("source.sky", sky, 'must be "clouds" or "clear"')
+        ramp = options.get("led_ramp_hz_per_s", 0.0)
+        if isinstance(ramp, bool) or not isinstance(ramp, (int, float)) or not abs(ramp) <= 100:
+            raise SettingError("source.led_ramp_hz_per_s", ramp,
+                               "must be a drift from -100 to 100 Hz per second")
+        step_s = options.get("led_step_s")
+        if step_s is not None and (isinstance(step_s, bool) or not isinstance(step_s, (int, float))
+                                   or not step_s >= 0):
+            raise SettingError("source.led_step_s", step_s, "must be a time >= 0 s")
+        step = options.get("led_step_fraction", 0.01)
+        if isinstance(step, bool) or not isinstance(step, (int, float)) or not abs(step) < 0.5:
+            raise SettingError("source.led_step_fraction", step,
+                               "must be a fraction of led_hz between -0.5 and 0.5")
         src = cls(rate_hz, seed, pace, float(led), float(mains), target,
-                  None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky, bits)
+                  None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky, bits,
+                  float(ramp), None if step_s is None else float(step_s), float(step))
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
         return src
 
@@ -344,6 +370,25 @@ class SimulatedSource(Source):
         c = k * (f_hz / fs)
         return c - np.floor(c)
 
+    def led_hz_at(self, t):
+        """The LED's chopping frequency at time ``t`` (s), drift included."""
+        t = np.asarray(t, dtype=np.float64)
+        f = self.scene.led_hz + self.led_ramp * t
+        if self.led_step_s is not None:
+            f = f + np.where(t >= self.led_step_s, self.led_step_fraction * self.scene.led_hz, 0.0)
+        return f
+
+    def _led_fraction(self, k: np.ndarray) -> np.ndarray:
+        """Cycle fraction of the LED drive; its phase is the integral of
+        :meth:`led_hz_at` (exact integers without drift)."""
+        if not self.led_ramp and self.led_step_s is None:
+            return self._cycle_fraction(k, self.scene.led_hz)
+        t = k / self.rate_hz
+        c = self.scene.led_hz * t + 0.5 * self.led_ramp * t * t
+        if self.led_step_s is not None:
+            c = c + self.led_step_fraction * self.scene.led_hz * np.maximum(t - self.led_step_s, 0)
+        return c - np.floor(c)
+
     def _generate_chunk(self, start: int, n: int) -> np.ndarray:
         sc, fs = self.scene, self.rate_hz
         k = np.arange(start, start + n, dtype=np.int64)
@@ -352,7 +397,7 @@ class SimulatedSource(Source):
         (d0, d1), (c0, c1), (w0, w1) = self._slow_terms(edges)
         d = d0 + (d1 - d0) * frac
         cloud = c0 + (c1 - c0) * frac
-        led = (self._cycle_fraction(k, sc.led_hz) < 0.5).astype(np.float64)  # exact 50 % duty
+        led = (self._led_fraction(k) < 0.5).astype(np.float64)  # exact 50 % duty
         pwm = self._cycle_fraction(k, sc.pwm_hz) < sc.pwm_duty
         theta = 2 * np.pi * (self._cycle_fraction(k, sc.mains_hz) + w0 + (w1 - w0) * frac)
         sn = np.sin(theta)

@@ -244,7 +244,7 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
         if names.index(n) != i:
             raise SettingError(f"chains[{i}].name", n, "must differ from the other chains' names")
     for i, c in enumerate(chains):
-        if c.detector.type == "lockin" and reference is None and not _self_referenced(source):
+        if c.detector.type in ("lockin", "boxcar") and reference is None and not _self_referenced(source):
             raise SettingError(f"chains[{i}].detector.type", "lockin",
                                "a lock-in needs a [reference] table with frequency_hz or channel")
     out_t = _table(doc, "output", "output")

@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 import sys
 
+from livefilt.dsp.detect import LOCK_REASONS
 from livefilt.units import si
 
 __all__ = ["Readout", "si"]
@@ -21,6 +22,21 @@ def _db(x: float) -> str:
     if math.isinf(x):  # a noise-free loopback: no noise to compare with
         return "  +∞ dB" if x > 0 else "  −∞ dB"
     return f"{x:6.1f} dB"
+
+
+def _pm(x: float, fmt: str, unit: str) -> str:
+    """`` ±12 %`` style uncertainty, empty when unknown."""
+    return "" if x is None or not math.isfinite(x) else f" ±{x:{fmt}}{unit}"
+
+
+def _offset(r, setting_hz) -> str:
+    """``reference 1371.37 Hz, +1.37 Hz from setting (±0.02 Hz)`` from a row."""
+    off, ref = float(r["offset_hz"]), float(r["ref_hz"])
+    if not (math.isfinite(off) and math.isfinite(ref)):
+        return ""
+    base = setting_hz if setting_hz else ref
+    return (f"reference {ref + off:.2f} Hz, {ref + off - base:+.2f} Hz from setting"
+            f"{_pm(float(r['offset_u_hz']), '.2f', ' Hz')}")
 
 
 def _clock(t: float) -> str:
@@ -57,7 +73,8 @@ class Readout:
                 f"{e.rate_hz:g} Hz, block {e.block}   elapsed {_clock(t)}"
                 + (f"   target {status['distance_m']:.2f} m" if "distance_m" in status else "")
                 + f"   dropped {st.dropped}   load {100 * st.load(e.rate_hz):.1f} %"]
-        rows = [f"{'chain':<6}{'amplitude (rms)':>17}{'phase':>10}{'noise':>15}{'SNR':>11}   lock"]
+        rows = [f"{'chain':<6}{'amplitude (rms)':>17}{'phase':>10}{'noise':>22}{'SNR':>17}   lock"]
+        notes = []
         amps = {}
         for c in e.chains:
             r = e.latest.get(c.name)
@@ -66,13 +83,28 @@ class Readout:
                 continue
             amps[c.name] = float(r["amplitude"])
             ph = float(r["phase_deg"])
+            noise = si(float(r["noise"]), units) + _pm(100 * float(r["noise_u"]), ".0f", " %")
+            snr = _db(float(r["snr_db"]))
+            if snr.endswith(" dB") and math.isfinite(float(r["snr_u_db"])):
+                snr = snr[:-3] + _pm(float(r["snr_u_db"]), ".1f", " dB")
             rows.append(f"{c.name:<6}{si(float(r['amplitude']), units):>17}"
                         f"{('—' if not math.isfinite(ph) else f'{ph:7.1f}°'):>10}"
-                        f"{si(float(r['noise']), units):>15}{_db(float(r['snr_db'])):>11}"
-                        f"   {'yes' if r['locked'] else 'NO'}")
+                        f"{noise:>22}{snr:>17}"
+                        f"   {'yes' if r['locked'] else 'NO'}"
+                        f"{'   biased (SNR < 10 dB)' if r['biased'] else ''}")
+            ref = e.reference
+            line = _offset(r, ref.frequency_hz if ref is not None else None)
+            if line:
+                notes.append(f"{c.name}: {line}")
+            if not r["locked"]:
+                notes.append(f"{c.name}: not locked: {LOCK_REASONS.get(int(r['lock_reason']), '')}")
+        rows += notes
         names = [c.name for c in e.chains]
         if len(names) >= 2 and all(n in amps for n in names[:2]) and amps[names[1]] > 0 and amps[names[0]] > 0:
             rows.append(f"{names[0]} − {names[1]}: {20 * math.log10(amps[names[0]] / amps[names[1]]):+.2f} dB")
+        if units == "FS":
+            rows.append("FS: fraction of the digitizer's full scale (1 FS = its positive limit); "
+                        "± is one standard uncertainty")
         rec = e.recorder
         if rec is not None and rec.failed:
             rows.append(f"NOT recording: {rec.failed}")

@@ -5,7 +5,9 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["si"]
+import numpy as np
+
+__all__ = ["si", "level_db", "level_unit"]
 
 _PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
 
@@ -22,3 +24,20 @@ def si(x: float, unit: str, digits: int = 4) -> str:
         if a >= s * 0.9995:
             scale, p = s, pre
     return f"{x / scale:.{digits}g} {p}{unit}"
+
+
+def level_db(rms, units: str):
+    """RMS amplitudes as levels in dB: dBFS per AES17 for full-scale units
+    (a sine whose peak reaches full scale, RMS 1/sqrt 2 FS, reads 0 dBFS, so
+    ``20 log10(sqrt 2 * rms)``), else dB re 1 unit RMS (dBV re 1 V RMS, common
+    practice).  Zero or negative reads NaN.  Arrays or floats."""
+    a = np.asarray(rms, dtype=np.float64)
+    ref = math.sqrt(0.5) if units == "FS" else 1.0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.where(a > 0, 20.0 * np.log10(a / ref), np.nan)
+    return out if out.ndim else float(out)
+
+
+def level_unit(units: str) -> str:
+    """The unit :func:`level_db` gives: ``dBFS`` or ``dBV``..."""
+    return "dB" + units

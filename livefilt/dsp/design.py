@@ -37,7 +37,7 @@ from __future__ import annotations
 import logging
 import math
 import re
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -50,6 +50,9 @@ __all__ = [
     "stage_sos",
     "chain_sos",
     "rc_analog",
+    "rc_corner_hz",
+    "rc_departure",
+    "rc_departure_hz",
     "analog_cutoff_hz",
     "frequency_response",
     "describe",
@@ -370,8 +373,52 @@ def frequency_response(sos: np.ndarray, freqs_hz: Sequence[float] | np.ndarray,
     return signal.sosfreqz(sos, worN=freqs, fs=fs)[1]
 
 
-def describe(spec: StageSpec) -> str:
-    """Short human label: ``"Butterworth low-pass, order 4, 1.2 kHz"``."""
+def rc_corner_hz(spec: StageSpec) -> tuple[float, float]:
+    """``(1 / (2 pi R C), the stage's actual -3 dB point)`` of an RC stage, Hz.
+
+    They differ for several sections: two loaded 10 k / 4.7 n low-pass
+    sections have fc 3386 Hz but -3 dB at 1267 Hz (:func:`analog_cutoff_hz`
+    of the ladder, :func:`rc_analog`).
+    """
+    rc = spec.r_ohm * spec.c_farad
+    b, a = _rc_normalised(spec.sections, spec.buffered, spec.response)
+    return 1.0 / (2.0 * math.pi * rc), analog_cutoff_hz(b, a) / rc
+
+
+def rc_departure(spec: StageSpec, fs: float, freqs_hz) -> np.ndarray:
+    """Digital model minus analog RC response, dB, at ``freqs_hz``.
+
+    The bilinear transform compresses the whole analog axis into 0..Nyquist,
+    so a low-pass model falls below the analog stage toward Nyquist (and
+    reaches zero there); prewarping keeps the -3 dB point exact.  Analog from
+    :func:`rc_analog`, digital from :func:`stage_sos` (scipy.signal.freqs and
+    sosfreqz).
+    """
+    f = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
+    b, a = rc_analog(spec.r_ohm, spec.c_farad, spec.sections, spec.buffered, spec.response)
+    analog = signal.freqs(b, a, worN=2.0 * np.pi * f)[1]
+    digital = frequency_response(stage_sos(replace(spec, gain_db=0.0), fs), f, fs)
+    with np.errstate(divide="ignore"):
+        return 20.0 * np.log10(np.abs(digital)) - 20.0 * np.log10(np.abs(analog))
+
+
+def rc_departure_hz(spec: StageSpec, fs: float, limit_db: float = 1.0) -> float | None:
+    """The lowest frequency where the digital RC model departs from the
+    analog stage by ``limit_db`` (None: not below 0.999 Nyquist)."""
+    nyq = fs / 2.0
+    f = np.geomspace(rc_corner_hz(spec)[1] / 10.0, 0.999 * nyq, 2000)
+    d = np.abs(rc_departure(spec, fs, f))
+    hit = np.flatnonzero(d >= limit_db)
+    return float(f[hit[0]]) if hit.size else None
+
+
+def describe(spec: StageSpec, fs: float | None = None) -> str:
+    """Short human label: ``"Butterworth low-pass, order 4, 1.2 kHz"``.
+
+    An RC stage shows both ``fc = 1/(2 pi R C)`` and its actual -3 dB point;
+    given ``fs``, also where the digital model departs 1 dB from the analog
+    stage (bilinear transform, :func:`rc_departure`).
+    """
     kind = spec.type
     if kind == "notch":
         text = f"notch {_fmt_hz(spec.at_hz)}"
@@ -379,12 +426,19 @@ def describe(spec: StageSpec) -> str:
             text += f" x{spec.harmonics}"
         text += f", Q {spec.q:g}"
     elif kind == "rc":
-        fc = 1.0 / (2.0 * math.pi * spec.r_ohm * spec.c_farad)
+        fc, f3 = rc_corner_hz(spec)
         text = (f"RC {_PRETTY[spec.response]} {_fmt_si(spec.r_ohm, 'Ω')} / "
                 f"{_fmt_si(spec.c_farad, 'F')}")
         if spec.sections > 1:
             text += f" x{spec.sections} ({'buffered' if spec.buffered else 'loaded'})"
-        text += f", fc {_fmt_hz(fc)}"
+        text += f", fc = 1/(2πRC) {_fmt_hz(fc)}, −3 dB at {_fmt_hz(f3)}"
+        if fs is not None:
+            try:
+                dep = rc_departure_hz(spec, fs)
+            except SettingError:
+                dep = None
+            if dep is not None:
+                text += f"; digital model 1 dB off the analog from {_fmt_hz(dep)}"
     else:
         text = f"{_DESIGN_NAMES[spec.design]} {_PRETTY[kind]}, order {spec.order}"
         if spec.design in _RIPPLE_DESIGNS:

@@ -65,7 +65,7 @@ State (for a faster path that must match)
 -----------------------------------------
 ``LockIn``: ``b`` (2,), ``a`` (2,) section coefficients; ``zi`` (n, 2, 1)
 lfilter state of the sections for the rows I, Q; ``stats`` a
-:class:`_WindowStats` over (I, Q) rows; ``tracker`` a :class:`_RefTracker`
+:class:`~livefilt.dsp.noise.WindowStats` over (I, Q) rows; ``tracker`` a :class:`_RefTracker`
 or None.  ``RmsDetector``: the same with ``zi`` (n, 1, 1) on ``x**2`` and
 ``stats`` over the amplitude rows.
 """
@@ -82,15 +82,20 @@ from scipy.signal import lfilter
 from scipy.special import gamma, gammaincinv
 
 from livefilt.dsp import kernels
+from livefilt.dsp.track import Tracker
+from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
 from livefilt.errors import SettingError
 
 __all__ = [
     "READING_DTYPE",
+    "BIAS_SNR_DB",
+    "LOCK_REASONS",
     "ReferenceSpec",
     "DetectorSpec",
     "LockIn",
     "RmsDetector",
     "make_detector",
+    "BoxcarLockIn",
 ]
 
 log = logging.getLogger(__name__)
@@ -108,7 +113,28 @@ READING_DTYPE = np.dtype([
     ("snr_db", np.float64),
     ("ref_hz", np.float64),
     ("locked", np.bool_),
+    # added with the honest read-outs (see livefilt.dsp.noise and the docstring)
+    ("noise_u", np.float64),           # relative standard uncertainty of noise (fraction)
+    ("snr_u_db", np.float64),          # standard uncertainty of snr_db, dB
+    ("vector_amplitude", np.float64),  # |window mean of (I, Q)|, RMS
+    ("amplitude_corrected", np.float64),  # sqrt(max(amplitude^2 - 2 noise^2, 0))
+    ("biased", np.bool_),              # SNR below BIAS_SNR_DB (or unknown): magnitude biased high
+    ("offset_hz", np.float64),         # signal frequency minus ref_hz, from the phase slope
+    ("offset_u_hz", np.float64),       # its standard uncertainty
+    ("lock_reason", np.int8),          # 0 locked, else a key of LOCK_REASONS
 ])
+
+#: SNR below which a magnitude reading is marked biased (Rice bias above ~ 1 %).
+BIAS_SNR_DB = 10.0
+
+#: Why ``locked`` is false, by ``lock_reason`` code.
+LOCK_REASONS = {
+    0: "",
+    1: "phase drifts faster than the output low-pass follows (reference off)",
+    2: "measured reference not locked",
+    3: "tracking: acquiring",
+    4: "tracking: lost",
+}
 
 _SLOPES = (6, 12, 18, 24)
 _WAVEFORMS = ("square", "sine")
@@ -134,7 +160,13 @@ class ReferenceSpec:
     waveform : {"square", "sine"}
         Shape of the measured reference.
     lock_range : float
-        Relative lock range around ``frequency_hz`` (0 < r < 1).
+        Relative lock range around ``frequency_hz`` (0 < r < 1); the capture
+        range of a tracking reference.
+    track : bool
+        Follow the signal itself (:mod:`livefilt.dsp.track`): a phase-locked
+        loop on the chain's filtered input, ``frequency_hz`` the starting guess.
+    track_bandwidth_hz : float
+        The tracking loop's noise bandwidth, Hz.
     """
 
     frequency_hz: float | None = None
@@ -142,6 +174,8 @@ class ReferenceSpec:
     channel: int | None = None
     waveform: str = "square"
     lock_range: float = 0.2
+    track: bool = False
+    track_bandwidth_hz: float = 5.0
 
     @property
     def measured(self) -> bool:
@@ -156,7 +190,8 @@ class ReferenceSpec:
         SettingError
             For an unknown key or a value out of range.
         """
-        _check_keys(table, ("frequency_hz", "phase_deg", "channel", "waveform", "lock_range"))
+        _check_keys(table, ("frequency_hz", "phase_deg", "channel", "waveform", "lock_range",
+                            "track", "track_bandwidth_hz"))
         freq = table.get("frequency_hz")
         if freq is not None:
             freq = _number(table, "frequency_hz")
@@ -181,7 +216,21 @@ class ReferenceSpec:
         if not 0 < lock_range < 1:
             raise SettingError("lock_range", table["lock_range"],
                                "must be above 0 and below 1 (relative to frequency_hz)")
-        return cls(freq, phase, channel, waveform, lock_range)
+        track = table.get("track", False)
+        if not isinstance(track, bool):
+            raise SettingError("track", track, "must be true or false")
+        if track and freq is None:
+            raise SettingError("frequency_hz", None,
+                               "tracking (track = true) needs frequency_hz as the starting guess")
+        if track and channel is not None:
+            raise SettingError("track", track,
+                               "must be false with a measured reference (channel); choose one")
+        bw = _number(table, "track_bandwidth_hz", 5.0)
+        if track and not 0 < bw <= 0.02 * freq:
+            raise SettingError("track_bandwidth_hz", table.get("track_bandwidth_hz"),
+                               "must be above 0 and at most 2 % of frequency_hz, "
+                               f"{0.02 * freq:g} Hz")
+        return cls(freq, phase, channel, waveform, lock_range, track, bw)
 
     def to_mapping(self) -> dict:
         """The table that :meth:`from_mapping` turns back into this spec."""
@@ -193,6 +242,9 @@ class ReferenceSpec:
             out["channel"] = self.channel
         out["waveform"] = self.waveform
         out["lock_range"] = self.lock_range
+        if self.track:
+            out["track"] = True
+            out["track_bandwidth_hz"] = self.track_bandwidth_hz
         return out
 
 
@@ -202,9 +254,11 @@ class DetectorSpec:
 
     Attributes
     ----------
-    type : {"lockin", "rms"}
+    type : {"lockin", "rms", "boxcar"}
     time_constant_s : float
-        Time constant of each output low-pass section, s.
+        Time constant of each output low-pass section, s; for "boxcar" the
+        lag budget ``settling_s`` (the average spans the whole reference
+        periods that fit in it).
     slope_db_oct : int
         6, 12, 18 or 24 dB/octave: 1 to 4 cascaded sections.
     noise_window_s : float
@@ -225,17 +279,33 @@ class DetectorSpec:
     def from_mapping(cls, table: dict, fs: float) -> "DetectorSpec":
         """Validate a ``detector`` table; field paths are relative to it.
 
-        ``noise_window_s`` defaults to max(2 s, 20 time constants).
+        ``noise_window_s`` defaults to the window that gives the noise
+        estimate 32 effective degrees of freedom (12.5 % uncertainty; 36 time
+        constants for one section, 150 for four; at least 2 s), see
+        :func:`livefilt.dsp.noise.default_window_s`.
 
         Raises
         ------
         SettingError
             For an unknown key, a missing time constant or a value out of range.
         """
-        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"))
         kind = table.get("type", "lockin")
+        if kind == "boxcar":
+            _check_keys(table, ("type", "settling_s", "noise_window_s"))
+            if "settling_s" not in table:
+                raise SettingError("settling_s", None,
+                                   "is required for a boxcar detector (the lag budget, s)")
+            lag = _number(table, "settling_s")
+            if not lag >= 2.0 / fs:
+                raise SettingError("settling_s", table["settling_s"],
+                                   f"must be at least 2 sample periods, {2.0 / fs:g} s at {fs:g} Hz")
+            window = _number(table, "noise_window_s", default_window_s(1, lag, boxcar_s=lag))
+            if not window > 0:
+                raise SettingError("noise_window_s", table["noise_window_s"], "must be above 0 s")
+            return cls(kind, lag, 24, window)
+        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"))
         if kind not in ("lockin", "rms"):
-            raise SettingError("type", kind, 'must be "lockin" or "rms"')
+            raise SettingError("type", kind, 'must be "lockin", "rms" or "boxcar"')
         if "time_constant_s" not in table:
             raise SettingError("time_constant_s", None, "is required (seconds, > 0)")
         tau = _number(table, "time_constant_s")
@@ -245,13 +315,16 @@ class DetectorSpec:
         slope = table.get("slope_db_oct", 24)
         if isinstance(slope, bool) or not isinstance(slope, (int, float)) or slope not in _SLOPES:
             raise SettingError("slope_db_oct", slope, "must be 6, 12, 18 or 24 (dB/octave)")
-        window = _number(table, "noise_window_s", max(2.0, 20.0 * tau))
+        window = _number(table, "noise_window_s", default_window_s(int(slope) // 6, tau))
         if not window > 0:
             raise SettingError("noise_window_s", table["noise_window_s"], "must be above 0 s")
         return cls(kind, tau, int(slope), window)
 
     def to_mapping(self) -> dict:
         """The table that :meth:`from_mapping` turns back into this spec."""
+        if self.type == "boxcar":
+            return {"type": "boxcar", "settling_s": self.time_constant_s,
+                    "noise_window_s": self.noise_window_s}
         return {"type": self.type, "time_constant_s": self.time_constant_s,
                 "slope_db_oct": self.slope_db_oct, "noise_window_s": self.noise_window_s}
 
@@ -285,6 +358,11 @@ def make_detector(spec: DetectorSpec, reference: ReferenceSpec | None, fs: float
     if reference is None:
         raise SettingError("reference", None,
                            "a lock-in needs frequency_hz or channel in [reference]")
+    if spec.type == "boxcar":
+        if reference.frequency_hz is None:
+            raise SettingError("reference", None, "a boxcar detector needs frequency_hz in "
+                               "[reference] (its average spans whole periods)")
+        return BoxcarLockIn(spec, reference, fs, int(output_every), exact_path)
     return LockIn(spec, reference, fs, int(output_every), exact_path)
 
 
@@ -309,6 +387,7 @@ class _Detector:
         self._rows_buf = np.empty((self._channels, 0))
         #: rows in the noise window
         self.window_rows = max(2, int(round(spec.noise_window_s * self.fs / output_every)))
+        self._tables = None
         self._work: dict = {}
         self.reset()
 
@@ -335,7 +414,7 @@ class _Detector:
     def reset(self) -> None:
         """Forget all state (filters start from zero, the noise window empties)."""
         self.zi = np.zeros((self.n_sections, self._channels, 1))
-        self.stats = _WindowStats(self.window_rows, self._stat_channels)
+        self._stats = None
         self._quiet_until: int | None = None
 
     def _settling(self, index: np.ndarray) -> int:
@@ -354,6 +433,57 @@ class _Detector:
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
+
+    # The window's ring and tables are built at the first settled row: a
+    # detector built only for its figures (ENBW, settling) at one row per
+    # sample and a 150 s window would otherwise hold hundreds of MB.
+    @property
+    def stats(self) -> WindowStats:
+        """The noise window's running sums (built at first use)."""
+        if self._stats is None:
+            self._stats = WindowStats(self.window_rows, self._stat_channels)
+        return self._stats
+
+    @property
+    def tables(self) -> WindowTables:
+        """Bias factors and degrees of freedom per row count (built at first use)."""
+        if self._tables is None:
+            self._tables = self._make_tables()
+        return self._tables
+
+    def _make_tables(self) -> WindowTables:
+        return WindowTables(self.window_rows, self.output_every / self.fs, self.n_sections,
+                            self.tau)
+
+    def _unbiased_noise(self, var_ddof1: np.ndarray, count: np.ndarray) -> np.ndarray:
+        """Noise from a ddof-1 window variance of ``count`` rows: corrected
+        for the rows' correlation (:class:`~livefilt.dsp.noise.WindowTables`),
+        NaN below :data:`~livefilt.dsp.noise.MIN_DOF` degrees of freedom."""
+        ok = self.tables.dof[count] >= MIN_DOF
+        with np.errstate(invalid="ignore"):
+            v = np.maximum(var_ddof1 * self.tables.factor[count], 0.0)
+        return np.where(ok, np.sqrt(v), np.nan)
+
+    def _fill_common(self, rows: np.ndarray) -> None:
+        """SNR and its uncertainty, the bias-corrected magnitude, the flag
+        (``vector_amplitude`` and ``noise`` already filled).
+
+        ``snr_u_db = 20 / ln 10 * sqrt(noise_u^2 + (noise / amplitude)^2)``:
+        the noise estimate's own scatter and the amplitude's (first order).
+        ``amplitude_corrected = sqrt(max(amplitude^2 - 2 noise^2, 0))``: for a
+        Rice-distributed magnitude ``E[R^2] = A^2 + 2 sigma^2`` (Rice 1944), so
+        its square is unbiased.
+        """
+        amp, noise = rows["amplitude"], rows["noise"]
+        snr = _snr_db(amp, noise)
+        rows["snr_db"] = snr
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rel = noise / amp
+            rows["snr_u_db"] = 20.0 / math.log(10.0) * np.sqrt(rows["noise_u"] ** 2 + rel * rel)
+            rows["amplitude_corrected"] = np.sqrt(np.maximum(amp * amp - 2.0 * noise * noise, 0.0))
+            # flagged on the window's SNR (vector average against the noise),
+            # steadier than a row's own; NaN (unknown) counts as biased
+            rows["biased"] = ~(_snr_db(rows["vector_amplitude"], noise) >= BIAS_SNR_DB)
 
     def _lowpass(self, work: np.ndarray) -> np.ndarray:
         """Run the n sections over ``work`` (channels, n) in place of state ``zi``."""
@@ -400,7 +530,9 @@ class LockIn(_Detector):
     """
 
     _channels = 2
-    _stat_channels = 3  # I, Q and (I + Q)/sqrt 2 (for the I-Q covariance)
+    # I, Q, (I + Q)/sqrt 2 (for the I-Q covariance), row time t, unwrapped
+    # phase, (t + phase)/sqrt 2 (for the slope of the phase), its row-to-row increment
+    _stat_channels = 7
 
     def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
                  output_every: int, exact_path: bool = False):
@@ -416,12 +548,22 @@ class LockIn(_Detector):
 
     def reset(self) -> None:
         super().reset()
-        self.tracker = (_RefTracker(self.reference, self.fs)
-                        if self.reference.measured else None)
+        self._last_z, self._phi = 0j, 0.0
+        r = self.reference
+        if r.measured:
+            self.tracker = _RefTracker(r, self.fs)
+        elif r.track:
+            self.tracker = Tracker(r.frequency_hz, r.lock_range, r.track_bandwidth_hz, self.fs,
+                                   self.exact_path)
+        else:
+            self.tracker = None
 
     def note_gap(self, frames: int) -> None:
-        """Samples were lost: the measured-reference tracker re-acquires."""
-        if self.tracker is not None:
+        """Samples were lost: the measured-reference tracker re-acquires, a
+        tracking loop's oscillator advances over the gap."""
+        if isinstance(self.tracker, Tracker):
+            self.tracker.note_gap(frames)
+        elif self.tracker is not None:
             self.tracker.note_gap()
 
     def process(self, x: np.ndarray, start_index: int, ref: np.ndarray | None = None) -> np.ndarray:
@@ -443,15 +585,19 @@ class LockIn(_Detector):
         x = np.ascontiguousarray(x, dtype=np.float64)
         n = x.shape[0]
         start_index = int(start_index)
-        if self.tracker is not None:
+        why = None
+        if isinstance(self.tracker, Tracker):
+            cycles, ref_hz, locked, why = self.tracker.process(x, start_index)
+        elif self.tracker is not None:
             if ref is None:
                 raise ValueError("a measured reference needs the reference block (ref)")
             cycles, ref_hz, locked = self.tracker.process(np.asarray(ref, np.float64), start_index)
+            why = 2
         else:
             cycles = None
             ref_hz, locked = self.reference.frequency_hz, None
         if self._kern is None:
-            return self._process_exact(x, start_index, cycles, ref_hz, locked)
+            return self._process_exact(x, start_index, cycles, ref_hz, locked, why)
         first = (-start_index) % self.output_every
         rows = self._row_buffer(n)
         b0, b1, a1 = self._coef
@@ -468,9 +614,11 @@ class LockIn(_Detector):
         if locked is not None:
             at = slice(first, n, self.output_every)
             ref_hz, locked = ref_hz[at], locked[at]
-        return self._readout(start_index + first, rows[0, :m], rows[1, :m], ref_hz, locked)
+            if isinstance(why, np.ndarray):
+                why = why[at]
+        return self._readout(start_index + first, rows[0, :m], rows[1, :m], ref_hz, locked, why)
 
-    def _process_exact(self, x, start_index, cycles, ref_hz, locked) -> np.ndarray:
+    def _process_exact(self, x, start_index, cycles, ref_hz, locked, why=None) -> np.ndarray:
         """The straightforward full-rate path: numpy mixer, scipy lfilter sections."""
         n = x.shape[0]
         if cycles is None:
@@ -488,40 +636,144 @@ class LockIn(_Detector):
         rows_at = self._row_slice(start_index, n)
         if locked is not None:
             ref_hz, locked = ref_hz[rows_at], locked[rows_at]
+            if isinstance(why, np.ndarray):
+                why = why[rows_at]
         return self._readout(start_index + rows_at.start, out[0, rows_at], out[1, rows_at],
-                             ref_hz, locked)
+                             ref_hz, locked, why)
 
-    def _readout(self, first_index: int, i_rows, q_rows, ref_hz, locked) -> np.ndarray:
-        """Rows from the low-passed I and Q at the due samples."""
-        rows = np.empty(i_rows.shape[0], READING_DTYPE)
-        rows["index"] = np.arange(first_index, first_index + i_rows.shape[0] * self.output_every,
-                                  self.output_every)
+    def _readout(self, first_index: int, i_rows, q_rows, ref_hz, locked, why=None) -> np.ndarray:
+        """Rows from the low-passed I and Q at the due samples.
+
+        ``locked``/``why``: the reference's own lock and reason codes per row
+        (None: an internal reference, locked unless its phase drifts).
+        """
+        m = i_rows.shape[0]
+        if m == 0:
+            return _NO_ROWS
+        rows = np.empty(m, READING_DTYPE)
+        index = np.arange(first_index, first_index + m * self.output_every, self.output_every)
+        rows["index"] = index
         rows["in_phase"] = i_rows
         rows["quadrature"] = q_rows
-        rows["amplitude"] = np.hypot(i_rows, q_rows)
+        amp = np.hypot(i_rows, q_rows)
+        rows["amplitude"] = amp
         rows["phase_deg"] = _wrap_deg(np.degrees(np.arctan2(q_rows, i_rows)))
-        # Noise across the signal's direction: the variance of (I, Q) along the
-        # unit vector perpendicular to the window's mean (I, Q).  Slow amplitude
-        # changes (a target being moved) lie along the mean and are not noise;
-        # isotropic noise has the same variance in every direction, so for
-        # white input this still tends to e * sqrt(ENBW).  The third stream
-        # (I + Q)/sqrt 2 gives the covariance: var = (vI + vQ)/2 + cov.
-        k = self._settling(rows["index"])
-        rows["noise"][:k] = np.nan
-        if k < len(rows):
+        # unwrapped phase, rad: the sum of the row-to-row phase increments
+        z = i_rows + 1j * q_rows
+        prev = np.empty_like(z)
+        prev[0] = self._last_z
+        prev[1:] = z[:-1]
+        inc = np.angle(z * np.conj(prev))
+        phi = self._phi + np.cumsum(inc)
+        self._last_z, self._phi = complex(z[-1]), float(phi[-1])
+        for name in ("noise", "noise_u", "vector_amplitude", "offset_hz", "offset_u_hz"):
+            rows[name] = np.nan
+        k = self._settling(index)
+        if k < m:
+            # Noise across the signal's direction: the variance of (I, Q) along
+            # the unit vector perpendicular to the window's mean (I, Q).  Slow
+            # amplitude changes (a target being moved) lie along the mean and
+            # are not noise; isotropic noise has the same variance in every
+            # direction.  (I + Q)/sqrt 2 gives the I-Q covariance, (t + phi)/sqrt 2
+            # the time-phase covariance: var = (v1 + v2)/2 + cov.
             i_s, q_s = i_rows[k:], q_rows[k:]
-            mean, var = self.stats.update(np.stack((i_s, q_s, (i_s + q_s) * _SQRT_HALF), axis=1))
+            t = (index[k:] // self.output_every).astype(np.float64)
+            p = phi[k:]
+            mean, var, cnt = self.stats.update(np.stack(
+                (i_s, q_s, (i_s + q_s) * _SQRT_HALF, t, p, (t + p) * _SQRT_HALF, inc[k:]), axis=1))
             mi, mq, vi, vq = mean[:, 0], mean[:, 1], var[:, 0], var[:, 1]
             cov = var[:, 2] - 0.5 * (vi + vq)
             m2 = mi * mi + mq * mq
             with np.errstate(invalid="ignore", divide="ignore"):
-                across = np.where(m2 > 0, (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
-                                  0.5 * (vi + vq))
-            rows["noise"][k:] = np.sqrt(np.maximum(across, 0.0))
-        rows["snr_db"] = _snr_db(rows["amplitude"], rows["noise"])
+                if isinstance(self.tracker, Tracker):
+                    # a tracking reference follows the quadrature noise within
+                    # its loop bandwidth (across read 0.7 of e sqrt(ENBW) at
+                    # 5 Hz): take the spread along the signal instead (target
+                    # motion then counts as noise)
+                    across = np.where(m2 > 0,
+                                      (mi * mi * vi + 2 * mi * mq * cov + mq * mq * vq) / m2,
+                                      0.5 * (vi + vq))
+                else:
+                    across = np.where(m2 > 0,
+                                      (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2,
+                                      0.5 * (vi + vq))
+                noise = self._unbiased_noise(across, cnt)
+                rows["noise"][k:] = noise
+                rows["noise_u"][k:] = np.where(np.isnan(noise), np.nan,
+                                               self.tables.relative_uncertainty(cnt))
+                vec = np.sqrt(m2)
+                rows["vector_amplitude"][k:] = vec
+                # frequency offset: least-squares slope of the unwrapped phase
+                # over the window's rows; its uncertainty from the regression
+                # variance 12 s^2 / (N T^2), s^2 the residual variance of the
+                # phase about the line, N the window's effective number of
+                # independent rows (common practice for a line fit; the
+                # effective count stands in for correlated rows)
+                vt, vp = var[:, 3], var[:, 4]
+                cov_tp = var[:, 5] - 0.5 * (vt + vp)
+                slope = cov_tp / vt  # rad per row
+                resid = np.maximum(vp - cov_tp * slope, 0.0)
+                per_row = self.fs / self.output_every / (2.0 * math.pi)
+                rows["offset_hz"][k:] = slope * per_row
+                # ... or, when larger, that of a random-walking phase (noise
+                # alone: the unwrapped phase wanders), 6/5 s_inc^2 / m per row^2
+                # with s_inc^2 the variance of the row-to-row increments
+                u_line = np.sqrt(resid * 12.0 / self.tables.n_mean[cnt]) / cnt
+                u_walk = np.sqrt(1.2 * var[:, 6] / cnt)
+                # fewer than 10 independent rows, or a phase scattered by more
+                # than 0.5 rad RMS about the line (the signal under about 6 dB
+                # SNR: noise's own phase wanders and wraps), judge nothing:
+                # NaN, no drift call
+                ok = (self.tables.n_mean[cnt] >= 10) & (resid < 0.25)
+                rows["offset_u_hz"][k:] = np.where(ok, np.fmax(u_line, u_walk) * per_row, np.nan)
+        self._fill_common(rows)
         rows["ref_hz"] = ref_hz
-        rows["locked"] = True if locked is None else locked
+        lock = np.ones(m, dtype=bool) if locked is None else np.asarray(locked, dtype=bool).copy()
+        reason = np.zeros(m, dtype=np.int8)
+        if why is not None:
+            reason[:] = np.where(lock, 0, why)
+        drifting = np.abs(rows["offset_hz"]) - 2.0 * rows["offset_u_hz"] > self.follow_hz
+        if isinstance(self.tracker, Tracker):
+            # the loop's own indicator rules: a window still holding a
+            # re-acquisition's phase transient would read as drift for a window
+            drifting = np.zeros(m, dtype=bool)
+        drift_now = lock & drifting
+        reason[drift_now] = 1
+        lock[drift_now] = False
+        rows["locked"] = lock
+        rows["lock_reason"] = reason
         return rows
+
+    @property
+    def ripple_2f0(self) -> float:
+        """The 2 f0 ripple of the output relative to the signal: the sections'
+        gain at 2 f0, ``(1 + (4 pi f0 tau)^2)^(-n/2)`` (the mixer's 2 f0 product
+        is as large as the wanted one; analog form of the sections)."""
+        f0 = self.reference.frequency_hz
+        if f0 is None:
+            return float("nan")
+        return (1.0 + (4.0 * math.pi * f0 * self.tau) ** 2) ** (-self.n_sections / 2.0)
+
+    def settled_s(self, band: float = 0.01) -> float:
+        """Time after a step until the output stays within ``band`` of its final
+        value, the 2 f0 ripple accounted: the step's tail must fall within
+        ``band - ripple``, ``tau P^-1(n, 1 - (band - ripple))``; ``inf`` when the
+        ripple alone fills the band (one 10 ms section at 1370 Hz ripples
+        0.58 %: 54.7 ms to 1 %, not the 46 ms of the tail alone)."""
+        r = self.ripple_2f0
+        r = 0.0 if not math.isfinite(r) else r
+        if r >= band:
+            return math.inf
+        return float(self.tau * gammaincinv(self.n_sections, 1.0 - (band - r)))
+
+    @property
+    def follow_hz(self) -> float:
+        """The frequency offset at which the output low-pass's gain falls to
+        0.99: ``(1 + (2 pi f tau)^2)^(-n/2) = 0.99``.  A reference further off
+        than that (significantly, by two standard uncertainties) reads
+        ``locked`` false: the amplitude reads low by more than 1 %."""
+        x = math.sqrt(0.99 ** (-2.0 / self.n_sections) - 1.0)
+        return x / (2.0 * math.pi * self.tau)
 
     def _anchor_phases(self, anchor: int, span: int) -> np.ndarray:
         """Exact ``(k f / fs) mod 1`` at the anchors ``anchor + i ANCHOR`` in a span."""
@@ -542,6 +794,69 @@ class LockIn(_Detector):
         cycles = self._buffer("cycles", (n,))
         np.add(ramp, frac0, out=cycles)
         return cycles
+
+
+class BoxcarLockIn(LockIn):
+    """Dual-phase lock-in whose output filter is a moving average over whole
+    reference periods: the matched filter for a held target at the lag limit.
+
+    ``N = round(M fs / f0)`` samples, ``M = floor(settling_s f0)`` periods
+    (at least one): the average of the last N mixer products, read at each
+    output row (a decimation of the moving average; the running sums are
+    recomputed exactly every N samples, :class:`~livefilt.dsp.noise.WindowStats`).
+    A whole number of periods nulls the 2 f0 product (to the half-sample
+    rounding of N).  ENBW ``fs / (2 N) = 1 / (2 T)``; a step settles
+    completely after ``T = N / fs``, linearly (``settling_s(p) = p T``).
+    ENBW x settling is 0.5, against 0.785 at best for n RC sections
+    (regularised gamma function, REFERENCES row 3c).
+    Same outputs as :class:`LockIn`; straightforward numpy path only.
+    """
+
+    def __init__(self, spec: DetectorSpec, reference: ReferenceSpec, fs: float,
+                 output_every: int, exact_path: bool = False):
+        f0 = reference.frequency_hz
+        self.periods = max(1, int(math.floor(spec.time_constant_s * f0 + 1e-9)))
+        self.length = max(1, int(round(self.periods * fs / f0)))
+        self.average_s = self.length / fs
+        super().__init__(spec, reference, fs, output_every, True)
+
+    def _make_tables(self) -> WindowTables:
+        return WindowTables(self.window_rows, self.output_every / self.fs, 1, self.average_s,
+                            boxcar_s=self.average_s)
+
+    def baseband_response(self, offset_hz) -> np.ndarray:
+        """Gain of the N-sample average at an offset from the reference
+        (Dirichlet kernel, ``sin(pi f N / fs) / (N sin(pi f / fs))``)."""
+        f = np.abs(np.atleast_1d(np.asarray(offset_hz, dtype=float)))
+        x = np.pi * f / self.fs
+        with np.errstate(invalid="ignore", divide="ignore"):
+            g = np.sin(self.length * x) / (self.length * np.sin(x))
+        return np.where(x == 0, 1.0, g)
+
+    @property
+    def enbw_hz(self) -> float:
+        """``fs / (2 N)``: the one-sided ENBW of an N-sample average (closed form)."""
+        return self.fs / (2.0 * self.length)
+
+    def settling_s(self, fraction: float) -> float:
+        """``fraction * T``: a step through a moving average rises linearly."""
+        if not 0 < fraction < 1:
+            raise SettingError("fraction", fraction, "must be above 0 and below 1")
+        return fraction * self.average_s
+
+    @property
+    def follow_hz(self) -> float:
+        """Offset at which the average's gain ``sin(pi f T) / (pi f T)`` is 0.99."""
+        return 0.24509 / (math.pi * self.average_s)  # sin x / x = 0.99 at x = 0.24509
+
+    def reset(self) -> None:
+        super().reset()
+        self._avg = WindowStats(self.length, 2)  # N samples x 2: 0.4 MB a second of lag at 48 kHz
+
+    def _lowpass(self, work: np.ndarray) -> np.ndarray:
+        """The moving average over N samples in place of the RC sections."""
+        mean, _, _ = self._avg.update(work.T)
+        return mean.T
 
 
 class RmsDetector(_Detector):
@@ -570,22 +885,34 @@ class RmsDetector(_Detector):
     def _readout(self, first_index: int, power) -> np.ndarray:
         """Rows from the low-passed square at the due samples."""
         amp = np.sqrt(np.maximum(power, 0.0))
-        rows = np.empty(amp.shape[0], READING_DTYPE)
-        rows["index"] = np.arange(first_index, first_index + amp.shape[0] * self.output_every,
+        m = amp.shape[0]
+        rows = np.empty(m, READING_DTYPE)
+        rows["index"] = np.arange(first_index, first_index + m * self.output_every,
                                   self.output_every)
         rows["in_phase"] = amp
         rows["quadrature"] = 0.0
         rows["amplitude"] = amp
         rows["phase_deg"] = np.nan
+        for name in ("noise", "noise_u", "vector_amplitude"):
+            rows[name] = np.nan
         k = self._settling(rows["index"])
-        rows["noise"][:k] = np.nan
-        rows["snr_db"][:k] = np.nan
-        if k < len(rows):
-            mean, var = self.stats.update(amp[k:, None])
-            rows["noise"][k:] = np.sqrt(var[:, 0])
-            rows["snr_db"][k:] = _snr_db(mean[:, 0], rows["noise"][k:])
+        if k < m:
+            mean, var, cnt = self.stats.update(amp[k:, None])
+            noise = self._unbiased_noise(var[:, 0], cnt)
+            rows["noise"][k:] = noise
+            rows["noise_u"][k:] = np.where(np.isnan(noise), np.nan,
+                                           self.tables.relative_uncertainty(cnt))
+            rows["vector_amplitude"][k:] = mean[:, 0]  # the window's mean amplitude
+        self._fill_common(rows)
+        if k < m:  # the RMS detector compares the window's mean amplitude with the noise
+            rows["snr_db"][k:] = _snr_db(rows["vector_amplitude"][k:], rows["noise"][k:])
+        rows["amplitude_corrected"] = amp  # band power: no Rice bias to remove
+        rows["biased"] = False
         rows["ref_hz"] = np.nan
+        rows["offset_hz"] = np.nan
+        rows["offset_u_hz"] = np.nan
         rows["locked"] = True
+        rows["lock_reason"] = 0
         return rows
 
 
@@ -800,69 +1127,6 @@ class _RefTracker:
                 why = (f"frequency {freq:.3f} Hz outside the lock range"
                        if not in_range else "irregular crossings")
                 self._set_locked(False, why)
-
-
-class _WindowStats:
-    """Running mean and sample variance over the last ``W`` rows, O(1) a row.
-
-    Sums of ``v - K`` and ``(v - K)**2`` are carried, ``K`` a shift; every
-    time the row count reaches a multiple of ``W`` the sums are recomputed
-    exactly from the window (so rounding does not build up over hours, and
-    ``K`` follows the level, which keeps cancellation small).  Recomputation
-    happens at fixed row numbers, so the result does not depend on how rows
-    arrive in blocks.
-
-    State: ``ring`` (W, ch) the last W rows (row r in slot r % W), ``count``
-    rows seen, ``shift`` (ch,), ``s1`` (ch,), ``s2`` (ch,).
-    """
-
-    def __init__(self, window: int, channels: int):
-        self.window = window
-        self.ring = np.zeros((window, channels))
-        self.count = 0
-        self.shift = np.zeros(channels)
-        self.s1 = np.zeros(channels)
-        self.s2 = np.zeros(channels)
-
-    def update(self, v: np.ndarray):
-        """Add rows ``v`` (m, ch); return (mean, var) after each row, (m, ch)."""
-        m = v.shape[0]
-        mean = np.empty_like(v)
-        var = np.empty_like(v)
-        W = self.window
-        j = 0
-        while j < m:
-            if self.count == 0:
-                self.shift = v[0].copy()
-            r0 = self.count
-            # rows up to and including the next one with r % W == W - 1
-            take = min(m - j, W - r0 % W)
-            seg = v[j:j + take]
-            rows = np.arange(r0, r0 + take)
-            leave = self.ring[rows % W]  # slots about to be overwritten
-            gone = (rows >= W)[:, None]
-            shift = self.shift
-            new = seg - shift
-            old = np.where(gone, leave - shift, 0.0)
-            s1 = np.cumsum(np.vstack((self.s1, new - old)), axis=0)[1:]
-            s2 = np.cumsum(np.vstack((self.s2, new * new - old * old)), axis=0)[1:]
-            self.ring[rows % W] = seg
-            self.count += take
-            if self.count % W == 0:
-                self.shift = self.ring.mean(axis=0)
-                dev = self.ring - self.shift
-                s1[-1] = dev.sum(axis=0)
-                s2[-1] = (dev * dev).sum(axis=0)
-            count = np.minimum(rows + 1, W)[:, None].astype(np.float64)
-            mean[j:j + take] = shift + s1 / count
-            if self.count % W == 0:
-                mean[j + take - 1] = self.shift + s1[-1] / W
-            self.s1, self.s2 = s1[-1].copy(), s2[-1].copy()
-            with np.errstate(invalid="ignore", divide="ignore"):
-                v_ = (s2 - s1 * s1 / count) / (count - 1)
-            var[j:j + take] = np.where(count >= 2, np.maximum(v_, 0.0), np.nan)
-            j += take
-        return mean, var
 
 
 _MISSING = object()

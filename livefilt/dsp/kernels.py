@@ -22,6 +22,9 @@ API map
     reference).
   - ``square_rows(x, b0, b1, a1, zi, first, every, rows)``: the RMS
     detector's square and output sections.
+  - ``pll_block(x, state, coef, cycles, hz, lock)``: the tracking
+    reference's phase-locked loop, sample by sample; returns the number of
+    samples done (fewer when lock is lost, so the caller re-acquires there).
 
 Why a per-sample loop
 ---------------------
@@ -54,7 +57,7 @@ import os
 import numpy as np
 
 __all__ = ["compiled", "sos_block", "sos_bank", "mix_internal_rows", "mix_cycles_rows",
-           "square_rows", "RESEED", "ANCHOR", "NO_JIT_ENV"]
+           "square_rows", "pll_block", "PLL_STATE", "RESEED", "ANCHOR", "NO_JIT_ENV"]
 
 log = logging.getLogger(__name__)
 
@@ -234,6 +237,87 @@ def square_rows(x, b0, b1, a1, zi, first, every, rows):
     return m
 
 
+#: Layout of the PLL state vector: NCO phase (cycles), frequency (cycles per
+#: sample), two arm sections for I and for Q, the slow averages of I, Q and
+#: of the arm magnitude, samples below the loss threshold, 1.0 once locked,
+#: the phase of the reference handed to the lock-in (cycles), the slow
+#: average of the phase error.
+PLL_STATE = ("phase", "freq", "i1", "i2", "q1", "q2", "i_slow", "q_slow", "r_slow", "low",
+             "held", "ref_phase", "e_slow")
+
+
+@_jit
+def pll_block(x, state, coef, cycles, hz, lock):
+    """Second-order (type 2) phase-locked loop over ``x``; see
+    :mod:`livefilt.dsp.track` for the design.
+
+    ``coef``: arm pole, proportional and integral gains (cycles per radian),
+    slow-average pole, rate Hz, lowest and highest frequency (cycles per
+    sample), lock and loss thresholds of the metric, samples below the loss
+    threshold that mean lost.  Writes the reference phase for the lock-in
+    (cycles: the integral of the loop filter's integrator, so without the
+    proportional path's phase jitter), the loop frequency (Hz) and the lock
+    flag; returns the samples done, stopping after the one at which lock is
+    lost.
+    """
+    pa, kp, ki, la, fs, f_lo, f_hi, th_lock, th_loss, lose_n = (
+        coef[0], coef[1], coef[2], coef[3], coef[4], coef[5], coef[6], coef[7], coef[8], coef[9])
+    ph, fr, i1, i2, q1, q2 = state[0], state[1], state[2], state[3], state[4], state[5]
+    i_s, q_s, r_s, low, held, rp = state[6], state[7], state[8], state[9], state[10], state[11]
+    e_s = state[12]
+    n = x.shape[0]
+    done = n
+    for k in range(n):
+        theta = _TWO_PI * ph
+        xk = x[k]
+        i1 = pa * i1 + (1.0 - pa) * (xk * math.cos(theta))
+        q1 = pa * q1 + (1.0 - pa) * (-xk * math.sin(theta))
+        i2 = pa * i2 + (1.0 - pa) * i1
+        q2 = pa * q2 + (1.0 - pa) * q1
+        r = math.sqrt(i2 * i2 + q2 * q2)
+        i_s = la * i_s + (1.0 - la) * i2
+        q_s = la * q_s + (1.0 - la) * q2
+        r_s = la * r_s + (1.0 - la) * r
+        # multiplying detector normalised by the slow in-phase level: an
+        # interferer in the arms averages out instead of capturing the loop
+        ref = i_s if i_s > 0.25 * r_s else 0.25 * r_s
+        e = q2 / ref if ref > 0.0 else 0.0
+        if e > 1.5:
+            e = 1.5
+        elif e < -1.5:
+            e = -1.5
+        cycles[k] = rp
+        fr += ki * e
+        if fr < f_lo:
+            fr = f_lo
+        elif fr > f_hi:
+            fr = f_hi
+        ph += fr + kp * e
+        ph -= math.floor(ph)
+        # the lock-in's reference: the loop frequency plus the slow average of
+        # the proportional path (a ramp's steady phase error), without its jitter
+        e_s = la * e_s + (1.0 - la) * e
+        rp += fr + kp * e_s
+        rp -= math.floor(rp)
+        hz[k] = (fr + kp * e_s) * fs
+        mag = math.sqrt(i_s * i_s + q_s * q_s)
+        met = i_s / mag if mag > 0.0 else 0.0  # cos of the slow vector's phase
+        if met > th_lock:
+            held = 1.0
+        if met < th_loss:
+            low += 1.0
+        else:
+            low = 0.0
+        lock[k] = held > 0.0 and met >= th_loss
+        if low > lose_n:
+            done = k + 1
+            break
+    state[0], state[1], state[2], state[3], state[4], state[5] = ph, fr, i1, i2, q1, q2
+    state[6], state[7], state[8], state[9], state[10], state[11] = i_s, q_s, r_s, low, held, rp
+    state[12] = e_s
+    return done
+
+
 # -- private helpers --------------------------------------------------------
 @_jit
 def _sections(v, b0, b1, a1, zi, ch):
@@ -260,6 +344,7 @@ class _Kernels:
         self.mix_internal_rows = mix_internal_rows
         self.mix_cycles_rows = mix_cycles_rows
         self.square_rows = square_rows
+        self.pll_block = pll_block
 
 
 def _build() -> _Kernels:

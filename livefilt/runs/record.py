@@ -10,7 +10,13 @@ A run folder holds
   (see :mod:`livefilt.runs.wavio`; header refreshed about once a second).
 - ``results.csv``: one row per chain per output interval with the columns
   :data:`RESULT_COLUMNS`; amplitudes in the input's units (volts where the
-  driver is calibrated, else full scale), RMS.
+  driver is calibrated, else FS), RMS.  Every value column's name ends in
+  its unit (:func:`result_header`): ``_s``, ``_deg``, ``_db``, ``_hz``,
+  ``_pct``, ``_V`` or ``_FS``; ``FS`` is the fraction of the digitizer's full
+  scale (1 FS = the positive limit of its codes; a full-scale sine then
+  reads 0.7071 FS RMS, which is 0 dBFS per AES17), written out in run.toml's
+  ``[units]`` table.  ``read_run`` gives the columns under their plain
+  names (``amplitude``, ``noise``...).
 
 :class:`RunWriter` only writes what it is given, from its own thread; :func:`read_run` returns a
 :class:`Run` with the config, raw samples, results and markers.
@@ -34,6 +40,7 @@ from typing import Any
 import numpy as np
 
 from livefilt import __version__
+from livefilt.dsp.detect import LOCK_REASONS
 from livefilt.errors import RecordingError
 from livefilt.tomlout import dumps
 from livefilt.runs.wavio import WavWriter, read_wav
@@ -41,7 +48,26 @@ from livefilt.runs.wavio import WavWriter, read_wav
 __all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
 
 RESULT_COLUMNS = ("time_s", "chain", "amplitude", "phase_deg", "in_phase", "quadrature",
-                  "noise", "snr_db", "ref_hz", "locked", "sample_index")
+                  "noise", "snr_db", "ref_hz", "locked", "sample_index",
+                  "noise_u_pct", "snr_u_db", "vector_amplitude", "amplitude_corrected",
+                  "biased", "offset_hz", "offset_u_hz", "lock_reason")
+#: Columns in the input's units: their header names get the unit as suffix.
+AMPLITUDE_COLUMNS = ("amplitude", "in_phase", "quadrature", "noise", "vector_amplitude",
+                     "amplitude_corrected")
+#: What the units in the header mean (run.toml's [units] table).
+UNIT_TEXT = {
+    "FS": "fraction of the digitizer's full scale: 1 FS is the positive limit of its codes; "
+          "amplitudes are RMS, so a full-scale sine reads 0.7071 FS (0 dBFS per AES17)",
+    "V": "volts at the digitizer's input (calibrated driver); amplitudes are RMS",
+}
+
+
+def result_header(units: str) -> list[str]:
+    """results.csv's header: amplitude columns carry the input's unit (``_V``
+    or ``_FS``); flags read ``locked``/``biased`` 1 or 0, ``lock_reason``
+    text (empty while locked)."""
+    u = "".join(ch for ch in str(units or "FS") if ch.isalnum()) or "FS"
+    return [f"{c}_{u}" if c in AMPLITUDE_COLUMNS else c for c in RESULT_COLUMNS]
 
 
 def _utc_now() -> datetime:
@@ -109,7 +135,8 @@ class RunWriter:
         except OSError as e:
             raise RecordingError(f"{self.folder}: cannot write the run ({e.strerror})") from None
         self._csv = csv.writer(self._csv_file)
-        self._csv.writerow(RESULT_COLUMNS)
+        self.units = str(source_info.get("units") or "FS")
+        self._csv.writerow(result_header(self.units))
         self.rate_hz = rate_hz
         self.config = tomllib.loads(config_toml)
         self.source_info = dict(source_info)
@@ -248,7 +275,10 @@ class RunWriter:
         for r in rows:
             w((f"{r['index'] / fs:.6f}", chain, _g(r["amplitude"]), _g(r["phase_deg"]),
                _g(r["in_phase"]), _g(r["quadrature"]), _g(r["noise"]), _g(r["snr_db"]),
-               _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"])))
+               _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"]),
+               _g(100.0 * r["noise_u"]), _g(r["snr_u_db"]), _g(r["vector_amplitude"]),
+               _g(r["amplitude_corrected"]), int(bool(r["biased"])), _g(r["offset_hz"]),
+               _g(r["offset_u_hz"]), LOCK_REASONS.get(int(r["lock_reason"]), "")))
         self.rows += len(rows)
 
     def _flush(self) -> None:
@@ -311,7 +341,8 @@ class RunWriter:
         if self.stopped:
             run["stopped_utc"] = self.stopped.isoformat(timespec="seconds")
             run["duration_s"] = round(self._wav.frames / self.rate_hz, 6)
-        doc = {"run": run, "source_info": _plain(self.source_info),
+        doc = {"run": run, "units": {self.units: UNIT_TEXT.get(self.units, self.units)},
+               "source_info": _plain(self.source_info),
                "counts": _plain(self.counts), "config": self.config,
                "markers": list(self.markers)}
         text = dumps(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
@@ -420,7 +451,9 @@ def _read_results(path: Path) -> dict[str, np.ndarray]:
     out = {}
     for j, name in enumerate(header):
         col = [r[j] for r in body]
-        if name == "chain":
+        base = name.rsplit("_", 1)[0] if name.rsplit("_", 1)[0] in AMPLITUDE_COLUMNS else name
+        name = base
+        if name in ("chain", "lock_reason"):
             out[name] = np.array(col, dtype=str)
         else:
             out[name] = np.array([float(v) for v in col], dtype=float)

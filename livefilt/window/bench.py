@@ -2,9 +2,12 @@
 
 :func:`measure_window` runs the real window (offscreen when there is no
 display) on the simulated greenhouse bench at a chosen rate, with the strip
-chart showing 10 s, and measures from the GUI thread:
+chart showing 10 s, in the Signals room (strip chart and spectrum on screen:
+the room that draws the most, as the whole window did before it had rooms),
+or another room by ``room``, and measures from the GUI thread:
 
-- ``fps``: strip-chart paints per second (what the eye gets);
+- ``fps``: strip-chart paints per second (what the eye gets; 0 in a room
+  without the strip);
 - ``cpu_fraction``: CPU time of the GUI thread (``time.thread_time``: the
   reduction, the plot updates and Qt's painting) over wall time; 1.0 = one core;
 - ``latency_ms`` (mean), ``latency_p95_ms``, ``latency_max_ms``: from the
@@ -33,7 +36,7 @@ log = logging.getLogger(__name__)
 
 
 def measure_window(seconds: float = 10, rate_hz: float = 192000, *, block: int = 256,
-                   strip_s: float = 10.0, warmup_s: float = 1.5) -> dict:
+                   strip_s: float = 10.0, warmup_s: float = 1.5, room: str = "signals") -> dict:
     """Run the window ``seconds`` (after ``warmup_s``) and return its measures.
 
     Returns
@@ -63,6 +66,7 @@ def measure_window(seconds: float = 10, rate_hz: float = 192000, *, block: int =
 
     engine.listeners.append(listener)
     win = MainWindow(engine, strip_seconds=strip_s)
+    win.show_room(room)
     strip = win.strip
     paints: list[tuple[float, int]] = []  # (end of paint, drawn index)
     original = strip.paintEvent
@@ -108,6 +112,7 @@ def measure_window(seconds: float = 10, rate_hz: float = 192000, *, block: int =
         "block": engine.block,
         "strip_s": strip_s,
         "seconds": wall,
+        "room": room,
     }
 
 

@@ -26,7 +26,7 @@ from PySide6 import QtCore, QtWidgets
 
 from livefilt.dsp.design import DESIGNS, STAGE_TYPES, describe
 from livefilt.errors import SettingError
-from livefilt.window import palette
+from livefilt.window import palette, words
 
 __all__ = ["ReferenceEditor", "ChainEditor", "SettingsPanel", "parse_text"]
 
@@ -50,6 +50,14 @@ _ROWS["bandpass"] = _ROWS["bandstop"] = [("band_hz", "line") if k == "cutoff_hz"
 _SHOWN_DEFAULTS = {"design": "butterworth", "order": 2, "ripple_db": 1.0, "stop_db": 40.0,
                    "harmonics": 1, "q": 30.0, "sections": 1, "buffered": True,
                    "response": "lowpass", "gain_db": 0.0}
+#: drop-down kinds: (config value, words) pairs, in the order shown
+_CHOICE_KINDS = {
+    "design": lambda: [(d, words.choice_words("design", d)) for d in DESIGNS],
+    "response": lambda: words.choices("response"),
+    "waveform": lambda: words.choices("waveform"),
+    "detector": lambda: words.choices("detector"),
+    "slope": lambda: words.choices("slope"),
+}
 _FIELD = re.compile(r"chains\[\d+\]\.(?:stages\[(\d+)\]\.|(detector)\.)?([a-z_]+)")
 
 
@@ -82,36 +90,45 @@ def _show(v) -> str:
 
 
 class _Field(QtWidgets.QWidget):
-    """One editor with its error message underneath."""
+    """One editor with its error message underneath.
+
+    A drop-down shows words and carries the config value as item data; the
+    field's ``text()`` and ``value()`` are always the config's own.
+    """
 
     committed = QtCore.Signal()
 
-    def __init__(self, key: str, kind: str, value, parent=None):
+    def __init__(self, key: str, kind: str, value, parent=None, context: str = ""):
         super().__init__(parent)
         self.key = key
         lay = QtWidgets.QVBoxLayout(self)
         lay.setContentsMargins(0, 0, 0, 0)
         lay.setSpacing(1)
         if kind == "check":
-            self.w = QtWidgets.QCheckBox("buffered (else loaded)")
+            self.w = QtWidgets.QCheckBox("buffered (unticked: loaded ladder)")
             self.w.setChecked(bool(value))
             self.w.toggled.connect(self.committed)
-        elif kind in ("design", "response", "waveform", "combo"):
+        elif kind in _CHOICE_KINDS:
             self.w = QtWidgets.QComboBox()
-            items = {"design": DESIGNS, "response": ("lowpass", "highpass"),
-                     "waveform": ("square", "sine")}.get(kind, ())
-            self.w.addItems([str(i) for i in items])
-            self.w.setCurrentText(_show(value))
-            self.w.currentTextChanged.connect(self.committed)
+            for v, text in _CHOICE_KINDS[kind]():
+                self.w.addItem(text, v)
+            i = self.w.findData(value)
+            if i < 0:  # a value the list lacks (the loader will judge it): show it as is
+                self.w.addItem(_show(value), value)
+                i = self.w.count() - 1
+            self.w.setCurrentIndex(i)
+            self.w.currentIndexChanged.connect(self.committed)
         else:
             self.w = QtWidgets.QLineEdit(_show(value))
             self.w.editingFinished.connect(self._edited)
+        self.w.setToolTip(words.tooltip(key, context))
         lay.addWidget(self.w)
         self.error = QtWidgets.QLabel()
         self.error.setWordWrap(True)
         self.error.setStyleSheet("color: #b23a30;")
         self.error.hide()
         lay.addWidget(self.error)
+        self.name_label: QtWidgets.QLabel | None = None  # set by the form that shows it
         self._last = self.text()
 
     def _edited(self):
@@ -120,18 +137,22 @@ class _Field(QtWidgets.QWidget):
             self.committed.emit()
 
     def text(self) -> str:
+        """The field as config text (a drop-down's config value, not its words)."""
         w = self.w
         if isinstance(w, QtWidgets.QCheckBox):
             return "true" if w.isChecked() else "false"
-        return w.currentText() if isinstance(w, QtWidgets.QComboBox) else w.text()
+        return _show(w.currentData()) if isinstance(w, QtWidgets.QComboBox) else w.text()
 
     def value(self):
         if isinstance(self.w, QtWidgets.QCheckBox):
             return self.w.isChecked()
         if isinstance(self.w, QtWidgets.QComboBox):
-            t = self.w.currentText()
-            return int(t) if t.isdigit() else t
+            return self.w.currentData()
         return parse_text(self.w.text())
+
+    def select(self, value) -> None:
+        """Choose the drop-down entry whose config value is ``value``."""
+        self.w.setCurrentIndex(self.w.findData(value))
 
     def set_error(self, message: str | None) -> None:
         if isinstance(self.w, QtWidgets.QLineEdit):
@@ -145,17 +166,20 @@ class _Form(QtWidgets.QGroupBox):
 
     changed = QtCore.Signal()
 
-    def __init__(self, title: str, parent=None):
+    def __init__(self, title: str, parent=None, context: str = ""):
         super().__init__(title, parent)
+        self.context = context
         self.form = QtWidgets.QFormLayout(self)
         self.form.setContentsMargins(6, 4, 6, 4)
         self.form.setVerticalSpacing(3)
         self.fields: dict[str, _Field] = {}
 
     def add(self, key: str, kind: str, value) -> _Field:
-        f = _Field(key, kind, value)
+        f = _Field(key, kind, value, context=self.context)
         f.committed.connect(self.changed)
-        self.form.addRow(key, f)
+        f.name_label = QtWidgets.QLabel(words.label(key, self.context))
+        f.name_label.setToolTip(f.w.toolTip())
+        self.form.addRow(f.name_label, f)
         self.fields[key] = f
         return f
 
@@ -169,11 +193,12 @@ class _StageForm(_Form):
     remove = QtCore.Signal(object)
 
     def __init__(self, number: int, table: dict, parent=None):
-        super().__init__(f"stage {number + 1}: {table['type']}", parent)
+        super().__init__(f"Stage {number + 1}: {words.STAGE_WORDS.get(table['type'], table['type'])}",
+                         parent, context="stage")
         self.kind = table["type"]
         for key, kind in _ROWS[self.kind] + [("gain_db", "line")]:
             self.add(key, kind, table.get(key, _SHOWN_DEFAULTS.get(key, "")))
-        btn = QtWidgets.QPushButton("remove stage")
+        btn = QtWidgets.QPushButton("Remove this stage")
         btn.clicked.connect(lambda: self.remove.emit(self))
         self.form.addRow("", btn)
         if "design" in self.fields:
@@ -197,8 +222,8 @@ class _StageForm(_Form):
 class ReferenceEditor(QtWidgets.QGroupBox):
     """The lock-in reference shared by every chain, applied live.
 
-    Fields: frequency_hz and phase_deg, plus channel and waveform for a
-    measured reference.  A reference the source announced (no ``[reference]``
+    Fields: reference frequency and phase, plus channel and waveform for a
+    measured reference (config keys frequency_hz, phase_deg, channel, waveform).  A reference the source announced (no ``[reference]``
     table in the settings) is shown as such; editing it overrides it, and the
     override is saved with the settings.
     """
@@ -211,7 +236,7 @@ class ReferenceEditor(QtWidgets.QGroupBox):
         ref = engine.reference
         self.origin = ("from the settings" if engine.settings.reference is not None
                        else "announced by the source; edit to override" if ref is not None
-                       else "none; give frequency_hz to add one")
+                       else "none; give a reference frequency to add one")
         keys = [("frequency_hz", "line"), ("phase_deg", "line")]
         if ref is not None and ref.measured:
             keys += [("channel", "line"), ("waveform", "waveform")]
@@ -221,9 +246,11 @@ class ReferenceEditor(QtWidgets.QGroupBox):
         grid.setVerticalSpacing(2)
         self.fields: dict[str, _Field] = {}
         for j, (key, kind) in enumerate(keys):
-            f = _Field(key, kind, table.get(key, ""))
+            f = _Field(key, kind, table.get(key, ""), context="reference")
             r, c = divmod(j, 2)
-            grid.addWidget(QtWidgets.QLabel(key), r, 2 * c,
+            f.name_label = QtWidgets.QLabel(words.label(key, "reference"))
+            f.name_label.setToolTip(f.w.toolTip())
+            grid.addWidget(f.name_label, r, 2 * c,
                            alignment=QtCore.Qt.AlignRight | QtCore.Qt.AlignTop)
             grid.addWidget(f, r, 2 * c + 1, alignment=QtCore.Qt.AlignTop)
             f.committed.connect(self.apply)
@@ -239,7 +266,9 @@ class ReferenceEditor(QtWidgets.QGroupBox):
     def table(self) -> dict:
         """The ``[reference]`` table as the fields now read (possibly invalid)."""
         ref = self.engine.reference
-        t = {"lock_range": ref.lock_range} if ref is not None else {}
+        # keep what the form does not show (lock range, tracking, a measured channel)
+        t = {k: v for k, v in ref.to_mapping().items() if k not in self.fields} \
+            if ref is not None else {}
         t.update({k: f.value() for k, f in self.fields.items() if f.text().strip()})
         return t
 
@@ -263,7 +292,7 @@ class ReferenceEditor(QtWidgets.QGroupBox):
         return True
 
     def _title(self) -> None:
-        self.setTitle(f"lock-in reference ({self.origin})")
+        self.setTitle(f"Lock-in reference ({self.origin})")
 
 
 class ChainEditor(QtWidgets.QWidget):
@@ -287,9 +316,11 @@ class ChainEditor(QtWidgets.QWidget):
         lay.addLayout(self.stage_box)
         add = QtWidgets.QHBoxLayout()
         self.new_type = QtWidgets.QComboBox()
-        self.new_type.addItems(list(STAGE_TYPES))
-        btn = QtWidgets.QPushButton("add stage")
-        btn.clicked.connect(lambda: self.add_stage(self.new_type.currentText()))
+        for kind in STAGE_TYPES:
+            self.new_type.addItem(words.choice_words("stage", kind), kind)
+        self.new_type.setToolTip("Kind of stage to append to this chain.\nConfig key: type")
+        btn = QtWidgets.QPushButton("Add a stage")
+        btn.clicked.connect(lambda: self.add_stage(self.new_type.currentData()))
         add.addWidget(self.new_type)
         add.addWidget(btn)
         add.addStretch(1)
@@ -318,13 +349,10 @@ class ChainEditor(QtWidgets.QWidget):
             self.detector.setParent(None)
             self.detector.deleteLater()
         det = table["detector"]
-        self.detector = _Form("detector")
-        self.detector.add("type", "combo", det["type"]).w.addItems(["lockin", "rms"])
-        self.detector.fields["type"].w.setCurrentText(det["type"])
+        self.detector = _Form("Detector", context="detector")
+        self.detector.add("type", "detector", det["type"])
         self.detector.add("time_constant_s", "line", det["time_constant_s"])
-        slope = self.detector.add("slope_db_oct", "combo", det["slope_db_oct"])
-        slope.w.addItems(["6", "12", "18", "24"])
-        slope.w.setCurrentText(str(det["slope_db_oct"]))
+        self.detector.add("slope_db_oct", "slope", det["slope_db_oct"])
         if "noise_window_s" in det:
             self.detector.add("noise_window_s", "line", det["noise_window_s"])
         self.detector.changed.connect(self.apply)
@@ -355,7 +383,7 @@ class ChainEditor(QtWidgets.QWidget):
             log.info("setting refused: %s", e)
             return False
         self._titles()
-        self._say("applied")
+        self._say("Applied: the chain runs on these settings from the next block.")
         self.applied.emit(self.index)
         return True
 
@@ -403,7 +431,8 @@ class ChainEditor(QtWidgets.QWidget):
 
     def _titles(self) -> None:
         for j, (form, spec) in enumerate(zip(self.stages, self.settings.stages)):
-            form.setTitle(f"stage {j + 1}: {describe(spec)}")
+            text = describe(spec, self.engine.rate_hz)
+            form.setTitle(f"Stage {j + 1}: {text[:1].upper()}{text[1:]}")
 
     def _say(self, text: str, error: bool = False) -> None:
         _say(self.message, text, error)
@@ -426,7 +455,7 @@ class SettingsPanel(QtWidgets.QWidget):
             scroll = QtWidgets.QScrollArea()
             scroll.setWidgetResizable(True)
             scroll.setWidget(ed)
-            self.tabs.addTab(scroll, f"chain {ch.name}")
+            self.tabs.addTab(scroll, f"Chain {ch.name}")
             self.editors.append(ed)
         lay.addWidget(self.tabs, 1)
         row = QtWidgets.QHBoxLayout()

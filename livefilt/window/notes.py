@@ -1,10 +1,11 @@
-"""Distance notes and recording controls.
+"""The walk-away: distance marks and recording controls.
 
-:class:`NotesBar`: the user types the target's distance (metres) and an
-optional note, or steps the distance by a chosen increment (buttons, or
-Ctrl+Up / Ctrl+Down anywhere in the window); each becomes a marker through
-:meth:`Engine.add_marker`, stored in the run when recording, and is announced
-with ``marked`` so the charts can draw it.
+:class:`NotesBar`: the current distance in large type; the user types the
+target's distance (metres) and an optional note, or steps the distance by a
+chosen increment (buttons, or Ctrl+Up / Ctrl+Down anywhere in the window);
+each becomes a marker through :meth:`Engine.add_marker`, stored in the run
+when recording.  Every mark the engine holds (also a script's or a simulated
+scene's) is listed and announced with ``marked`` so the charts can draw it.
 
 :class:`RecordBar`: start/stop a recording into a run folder under a chosen
 parent folder; shows elapsed time, bytes written, free disk and the folder.
@@ -20,6 +21,7 @@ from PySide6 import QtCore, QtWidgets
 
 from livefilt.errors import LivefiltError
 from livefilt.window import palette
+from livefilt.window.labels import LineBox
 
 __all__ = ["NotesBar", "RecordBar"]
 
@@ -45,24 +47,45 @@ def _metres(text: str, what: str) -> float:
     return v
 
 
-class NotesBar(QtWidgets.QGroupBox):
-    """Distance entry, step buttons and the list of recent markers."""
+class NotesBar(QtWidgets.QFrame):
+    """The walk-away card: where the target is now, how to mark it, the marks so far.
+
+    Marks come from :attr:`engine.stats.marks`, whoever made them (this card,
+    a script, a simulated scene's truth marks): :meth:`sync` shows the new
+    ones and announces each with ``marked``.
+    """
 
     marked = QtCore.Signal(dict)
 
     def __init__(self, engine, parent=None):
-        super().__init__("Distance notes", parent)
+        super().__init__(parent)
         self.engine = engine
-        form = QtWidgets.QFormLayout(self)
+        lay = QtWidgets.QVBoxLayout(self)
+        lay.setContentsMargins(14, 6, 10, 8)
+        lay.setSpacing(3)
+        lay.addWidget(palette.card(self, "walk", palette.WALK_RULE,
+                                   "Walk-away: where is the target?"))
+        self.current = QtWidgets.QLabel("— m")
+        self.current.setFont(palette.big_font(26, mono=False))
+        self.current.setStyleSheet("color: #b9b2a6;")  # pale until the first mark
+        lay.addWidget(LineBox(self.current))
+        self.age = QtWidgets.QLabel("no mark yet: type the target's distance and press Enter")
+        self.age.setStyleSheet(f"color: {palette.FOREGROUND};")
+        lay.addWidget(LineBox(self.age))
+        form = QtWidgets.QFormLayout()
+        form.setContentsMargins(0, 4, 0, 0)
         self.distance = QtWidgets.QLineEdit()
-        self.distance.setPlaceholderText("metres, e.g. 1.5")
+        self.distance.setPlaceholderText("e.g. 1.5")
+        self.distance.setToolTip("The target's distance from the sensor, in metres; Enter marks it.")
         self.distance.returnPressed.connect(self.mark)
         self.note = QtWidgets.QLineEdit()
         self.note.setPlaceholderText("optional, e.g. leaf edge")
         self.note.returnPressed.connect(self.mark)
         self.step = QtWidgets.QLineEdit("0.25")
-        form.addRow("distance (m)", self.distance)
-        form.addRow("note", self.note)
+        self.step.setToolTip("How far the step buttons and Ctrl+Up / Ctrl+Down move the target, "
+                             "in metres.")
+        form.addRow("Distance (m)", self.distance)
+        form.addRow("Note", self.note)
         row = QtWidgets.QHBoxLayout()
         mark = QtWidgets.QPushButton("Mark")
         mark.clicked.connect(self.mark)
@@ -73,14 +96,18 @@ class NotesBar(QtWidgets.QGroupBox):
         for w in (mark, down, up):
             row.addWidget(w)
         form.addRow(row)
-        form.addRow("step (m)", self.step)
+        form.addRow("Step (m)", self.step)
+        lay.addLayout(form)
         self.error = QtWidgets.QLabel()
         self.error.setStyleSheet("color: #b23a30;")
         self.error.setWordWrap(True)
-        form.addRow(self.error)
+        lay.addWidget(self.error)
+        lay.addWidget(QtWidgets.QLabel("Marks so far (newest first)"))
         self.recent = QtWidgets.QListWidget()
-        self.recent.setMaximumHeight(90)
-        form.addRow(self.recent)
+        self.recent.setMinimumHeight(60)
+        lay.addWidget(self.recent, 1)
+        self._seen = 0
+        self.last_distance = None  # (time_s, distance_m) of the newest mark with a distance
 
     def mark(self) -> dict | None:
         """Marker from the typed distance and note; None (and a message) if invalid."""
@@ -95,11 +122,34 @@ class NotesBar(QtWidgets.QGroupBox):
         self._refuse(None, "")
         m = self.engine.add_marker(d, self.note.text().strip())
         self.note.clear()
-        label = (f"{m['distance_m']:g} m" if "distance_m" in m else "") + (
-            f"  {m['note']}" if m.get("note") else "")
-        self.recent.insertItem(0, f"{m['time_s']:8.2f} s   {label.strip()}")
-        self.marked.emit(m)
+        self.sync()
         return m
+
+    def sync(self) -> list[dict]:
+        """Show the engine's marks made since the last look; return them."""
+        marks = self.engine.stats.marks
+        new = list(marks[self._seen:])
+        self._seen += len(new)
+        for m in new:
+            label = (f"{m['distance_m']:g} m" if "distance_m" in m else "") + (
+                f"  {m['note']}" if m.get("note") else "")
+            self.recent.insertItem(0, f"{m['time_s']:8.2f} s   {label.strip()}")
+            if "distance_m" in m:
+                self.last_distance = (m["time_s"], m["distance_m"])
+                self.current.setText(f"{m['distance_m']:g} m")
+                self.current.setStyleSheet(f"color: {palette.MARKER};")
+            self.marked.emit(m)
+        if new:
+            self.refresh_age()
+        return new
+
+    def refresh_age(self) -> None:
+        """How long ago (acquisition time) the current distance was marked."""
+        if self.last_distance is None:
+            return
+        now = self.engine.stats.index / self.engine.rate_hz
+        self.age.setText(f"marked at {self.last_distance[0]:.1f} s, "
+                         f"{max(0.0, now - self.last_distance[0]):.0f} s ago")
 
     def step_by(self, sign: int) -> dict | None:
         """Move the distance by ± step and mark it."""
@@ -118,16 +168,20 @@ class NotesBar(QtWidgets.QGroupBox):
         return None
 
 
-class RecordBar(QtWidgets.QGroupBox):
+class RecordBar(QtWidgets.QFrame):
     """Start/stop recording; elapsed time, bytes written, free disk, folder."""
 
     def __init__(self, engine, parent_dir: str = "runs", parent=None):
-        super().__init__("Recording", parent)
+        super().__init__(parent)
         self.engine = engine
         self._t0 = None
         form = QtWidgets.QFormLayout(self)
+        form.setContentsMargins(14, 6, 10, 6)
+        form.addRow(palette.card(self, "record", palette.WALK_RULE,
+                                 "Recording: the run and its marks on disk"))
         self.parent_dir = QtWidgets.QLineEdit(parent_dir)
-        form.addRow("into folder", self.parent_dir)
+        self.parent_dir.setToolTip("A new run folder is made inside this folder.")
+        form.addRow("Into folder", self.parent_dir)
         self.button = QtWidgets.QPushButton("Start recording")
         self.button.clicked.connect(self.toggle)
         form.addRow(self.button)

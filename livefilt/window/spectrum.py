@@ -23,7 +23,7 @@ from scipy import fft, signal
 from livefilt.window import palette
 from livefilt.window.strip import fit_range
 
-__all__ = ["SpectrumPanel", "welch_db", "column_minmax"]
+__all__ = ["SpectrumPanel", "welch_db", "column_minmax", "line_key"]
 
 log = logging.getLogger(__name__)
 
@@ -94,13 +94,13 @@ class SpectrumPanel(QtWidgets.QWidget):
         lay = QtWidgets.QVBoxLayout(self)
         lay.setContentsMargins(0, 0, 0, 0)
         bar = QtWidgets.QHBoxLayout()
-        self.log_box = QtWidgets.QCheckBox("log frequency")
+        self.legend = QtWidgets.QLabel()  # above the plot: a legend inside would hide curves
+        self.legend.setStyleSheet(f"color: {palette.FOREGROUND};")
+        bar.addWidget(self.legend, 1)
+        self.log_box = QtWidgets.QCheckBox("Log frequency axis")
         self.log_box.setChecked(True)
         self.log_box.toggled.connect(self.set_log)
-        bar.addWidget(self.log_box)
-        bar.addStretch(1)
-        self.legend = QtWidgets.QLabel()  # above the plot: a legend inside would hide curves
-        bar.addWidget(self.legend)
+        bar.addWidget(self.log_box, 0, QtCore.Qt.AlignTop)
         lay.addLayout(bar)
         self.plot = pg.PlotWidget()
         lay.addWidget(self.plot, 1)
@@ -132,9 +132,14 @@ class SpectrumPanel(QtWidgets.QWidget):
                 pen = palette.chain_pen(k - len(inputs), 1.0)  # wider pens cost 2x to paint
                 label = f"{names[i]} output"
             self.curves.append(p.plot(pen=pen, name=label, skipFiniteCheck=True))
-        self.legend.setText("   ".join(_key(c.opts["pen"], name) for c, name in
-                                        zip(self.curves, [c.name() for c in self.curves]))
-                            + "  (wide: chain gain, right axis)")
+        raw = " and ".join(names[i] for i in inputs)
+        outs = ", ".join(line_key(c.opts["pen"], f"after chain {ch.name}")
+                         for c, ch in zip(self.curves[len(inputs):], engine.chains))
+        self.legend.setText(
+            f"Noise and signal by frequency, last half second: {line_key(palette.raw_pen(), raw)} "
+            f"as it arrives, {outs}. The wide pale curves are each chain's gain, read on the "
+            f"right axis.")
+        self.legend.setWordWrap(True)
         self.gain_curves = []
         for k, _ in enumerate(engine.chains):
             c = pg.PlotCurveItem(pen=palette.chain_pen(k, 2.4))
@@ -242,7 +247,7 @@ class SpectrumPanel(QtWidgets.QWidget):
         self.gain_vb.linkedViewChanged(self.p.vb, self.gain_vb.XAxis)
 
 
-def _key(pen, name: str) -> str:
+def line_key(pen, name: str) -> str:
     """Rich-text legend entry: a line sample in the pen's colour and style, then the name."""
     pen = pg.mkPen(pen)
     sample = {QtCore.Qt.SolidLine: "——", QtCore.Qt.DashLine: "- - -"}.get(pen.style(), "· · ·")

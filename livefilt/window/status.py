@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from PySide6 import QtGui, QtWidgets
+from PySide6 import QtWidgets
+
+from livefilt.window.labels import fix_size
 
 __all__ = ["StatusLine"]
 
@@ -15,7 +17,7 @@ class StatusLine(QtWidgets.QStatusBar):
         self.engine = engine
         src = engine.source
         self.source = QtWidgets.QLabel(f"{src.driver}: {src.device}")
-        self.rate = QtWidgets.QLabel(f"{engine.rate_hz:g} Hz, block {engine.block}")
+        self.rate = QtWidgets.QLabel(f"{engine.rate_hz:g} Hz, blocks of {engine.block} samples")
         self.losses = QtWidgets.QLabel()
         self.load = QtWidgets.QLabel()
         self.fps = QtWidgets.QLabel()
@@ -23,9 +25,8 @@ class StatusLine(QtWidgets.QStatusBar):
         # fixed sizes: a changing text then repaints its label alone, not the window's layout
         for w, sample in ((self.losses, "overruns 99999, dropped 9999999999 samples"),
                           (self.load, "processing 100.0 % of real time"),
-                          (self.fps, "display 999 fps")):
-            fm = QtGui.QFontMetrics(w.font())
-            w.setFixedSize(fm.horizontalAdvance(sample) + 8, fm.height() + 4)
+                          (self.fps, "display 999 frames/s")):
+            fix_size(w, sample)
         for w in (self.source, self.rate, self.losses, self.load, self.fps):
             self.addWidget(w)
         self.addPermanentWidget(self.note)
@@ -37,7 +38,7 @@ class StatusLine(QtWidgets.QStatusBar):
         self.losses.setText(f"overruns {st.overruns}, dropped {st.dropped} samples")
         self.losses.setStyleSheet("color: #b23a30; font-weight: bold;" if bad else "")
         self.load.setText(f"processing {100 * st.load(e.rate_hz):.1f} % of real time")
-        self.fps.setText(f"display {fps:.0f} fps")
+        self.fps.setText(f"display {fps:.0f} frames/s")
         if e.error is not None:
             self.note.setText(f"acquisition stopped: {e.error}")
             self.note.setStyleSheet("color: #b23a30; font-weight: bold;")

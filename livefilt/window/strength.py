@@ -1,28 +1,25 @@
-"""Detected strength: amplitude and SNR of each chain over time, and the big read-out.
+"""Detected strength: amplitude and SNR of each chain over time.
 
-:class:`StrengthPlots` draws each chain's detector rows (amplitude, RMS in the
-source's units, log scale; SNR in dB) on the strip chart's time axis.
-:class:`BigReadout` shows the latest values in large type, readable from two
-metres: amplitude, noise and SNR per chain, and A minus B in dB.
-
-Both read the tap's detector rows through :meth:`Tap.rows_since` (only the
-rows new since the last look; lock-free).
+:class:`RowHistory` keeps each chain's recent detector rows, read from the tap
+through :meth:`Tap.rows_since` (only the rows new since the last look;
+lock-free); the window updates them and both :class:`StrengthPlots` and the
+verdict (:mod:`.verdict`) read them.  :class:`StrengthPlots` draws amplitude
+(RMS in the source's units, in dB) and SNR on the walk-away's time line, with
+the distance marks.
 """
 
 from __future__ import annotations
 
 import logging
-import math
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6 import QtCore, QtGui, QtWidgets
 
-from livefilt.units import si
+from livefilt.units import level_db, level_unit
 from livefilt.window import palette
 from livefilt.window.strip import fit_range
 
-__all__ = ["StrengthPlots", "BigReadout", "RowHistory"]
+__all__ = ["StrengthPlots", "RowHistory"]
 
 log = logging.getLogger(__name__)
 
@@ -38,8 +35,9 @@ class RowHistory:
         History kept, seconds.
     """
 
-    def __init__(self, tap, chain: str, keep_s: float = 60.0):
+    def __init__(self, tap, chain: str, keep_s: float = 60.0, units: str = "FS"):
         self.tap = tap
+        self.units = units
         self.chain = chain
         self.rate_hz = tap.rate_hz
         self.keep_s = keep_s
@@ -55,8 +53,7 @@ class RowHistory:
         self.latest = new[-1]
         self.last_index = int(new["index"][-1])
         amp = new["amplitude"].astype(float)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            amp_db = np.where(amp > 0, 20 * np.log10(amp), np.nan)
+        amp_db = level_db(amp, self.units)  # dBFS per AES17: a full-scale sine is 0 dBFS
         t = new["index"] / self.rate_hz
         keep = np.searchsorted(self.t, t[-1] - self.keep_s) if len(self.t) else 0
         self.t = np.concatenate([self.t[keep:], t])
@@ -80,7 +77,8 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(2)
         self.p_amp = self.addPlot(row=0, col=0)
         self.p_snr = self.addPlot(row=1, col=0)
-        self.p_amp.setLabel("left", f"amplitude (dB{units})")
+        self.units = units
+        self.p_amp.setLabel("left", f"signal ({level_unit(units)})")
         self.p_snr.setLabel("left", "SNR (dB)")
         self.p_snr.setLabel("bottom", "time since start (s)")
         self.p_amp.hideAxis("bottom")
@@ -91,22 +89,23 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
             p.disableAutoRange()
             p.getAxis("left").setWidth(70)
             p.getAxis("left").enableAutoSIPrefix(False)
-        self.p_amp.addLegend(offset=(6, -4), labelTextSize="9pt")
         self.curves = {}
         for k, name in enumerate(histories):
             # clipped to the view: wide and dashed pens are costly, so only the shown part is stroked
-            self.curves[name] = (self.p_amp.plot(pen=palette.chain_pen(k, 2.0), name=name,
-                                                 clipToView=True),
+            self.curves[name] = (self.p_amp.plot(pen=palette.chain_pen(k, 2.0), clipToView=True),
                                  self.p_snr.plot(pen=palette.chain_pen(k, 2.0), clipToView=True))
         self._markers: list[tuple[float, list]] = []
         self._window = None
+        self._drawn = {name: None for name in histories}  # last row index drawn per chain
 
     def refresh(self, t0: float | None = None, t1: float | None = None) -> None:
-        """Draw new rows; show times ``t0`` to ``t1`` (s) and fit the y ranges to them."""
+        """Draw rows the histories gained since the last draw; show times ``t0``
+        to ``t1`` (s) and fit the y ranges to them."""
         changed = False
         for name, h in self.histories.items():
-            if not h.update():
+            if self._drawn[name] == h.last_index:
                 continue
+            self._drawn[name] = h.last_index
             changed = True
             c_amp, c_snr = self.curves[name]
             c_amp.setData(h.t, h.amp_db, connect="finite")
@@ -129,8 +128,8 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         snr = snr[np.isfinite(snr)]
         if len(amp):
             # settling rows start near zero: show at most 80 dB below the top
-            top = 20 * np.log10(amp.max())
-            fit_range(self.p_amp, max(20 * np.log10(amp.min()), top - 80), top)
+            top = level_db(amp.max(), self.units)
+            fit_range(self.p_amp, max(level_db(amp.min(), self.units), top - 80), top)
         if len(snr):
             # the first rows (noise estimate still empty) can read 150 dB: keep them out of scale
             lo, hi = np.percentile(snr, [1, 99])
@@ -146,71 +145,3 @@ class StrengthPlots(pg.GraphicsLayoutWidget):
         while len(self._markers) > 200:
             for p, ln in self._markers.pop(0)[1]:
                 p.removeItem(ln)
-
-
-class BigReadout(QtWidgets.QFrame):
-    """Latest amplitude, noise and SNR per chain in large type; A minus B in dB."""
-
-    def __init__(self, histories: dict[str, RowHistory], units: str, parent=None):
-        super().__init__(parent)
-        self.histories = histories
-        self.units = units
-        self.setFrameShape(QtWidgets.QFrame.StyledPanel)
-        grid = QtWidgets.QGridLayout(self)
-        grid.setContentsMargins(8, 6, 8, 6)
-        grid.setHorizontalSpacing(14)
-        grid.setVerticalSpacing(0)
-        heads = ["", f"amplitude ({units} rms)", "noise", "SNR"]
-        for j, h in enumerate(heads):
-            lab = QtWidgets.QLabel(h)
-            lab.setStyleSheet(f"color: {palette.FOREGROUND};")
-            grid.addWidget(lab, 0, j, alignment=QtCore.Qt.AlignRight if j else QtCore.Qt.AlignLeft)
-        self.labels = {}
-        styles = ["──", "- -", "···", "-·-"]
-        for k, name in enumerate(histories):
-            colour = palette.chain_colour(k)
-            tag = QtWidgets.QLabel(f"{name} {styles[k % len(styles)]}")
-            tag.setFont(palette.big_font(24))
-            tag.setStyleSheet(f"color: {colour};")
-            grid.addWidget(tag, 1 + k, 0)
-            row = []
-            for j, size in ((1, 30), (2, 16), (3, 30)):
-                lab = QtWidgets.QLabel("—")
-                lab.setFont(palette.big_font(size, bold=size > 20))
-                lab.setStyleSheet(f"color: {colour};")
-                lab.setAlignment(QtCore.Qt.AlignRight | QtCore.Qt.AlignVCenter)
-                sample = "−888.8 dB" if j == 3 else "888.8 m" + units
-                _fix_size(lab, sample)
-                grid.addWidget(lab, 1 + k, j)
-                row.append(lab)
-            self.labels[name] = row
-        self.diff = QtWidgets.QLabel("")
-        self.diff.setFont(palette.big_font(20))
-        self.diff.setStyleSheet(f"color: {palette.FOREGROUND};")
-        _fix_size(self.diff, "A − B:  +888.88 dB")
-        grid.addWidget(self.diff, 1 + len(histories), 0, 1, 4)
-        names = list(histories)
-        self._pair = names[:2] if len(names) >= 2 else None
-
-    def refresh(self) -> None:
-        amps = {}
-        for name, h in self.histories.items():
-            r = h.latest
-            if r is None:
-                continue
-            a, n, s = float(r["amplitude"]), float(r["noise"]), float(r["snr_db"])
-            amps[name] = a
-            la, ln, ls = self.labels[name]
-            la.setText(si(a, self.units))
-            ln.setText(si(n, self.units))
-            ls.setText("—" if not math.isfinite(s) else f"{s:5.1f} dB")
-        if self._pair and all(amps.get(n, 0) > 0 for n in self._pair):
-            a, b = self._pair
-            self.diff.setText(f"{a} − {b}:  {20 * math.log10(amps[a] / amps[b]):+.2f} dB")
-
-
-def _fix_size(label: QtWidgets.QLabel, sample: str) -> None:
-    """Fix a changing label's size to fit ``sample``: a fixed-size widget's new
-    text repaints the label alone, not the whole window's layout."""
-    fm = QtGui.QFontMetrics(label.font())
-    label.setFixedSize(fm.horizontalAdvance(sample) + 6, fm.height() + 4)

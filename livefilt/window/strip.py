@@ -182,8 +182,9 @@ class StripChart(pg.GraphicsLayoutWidget):
         self.ci.setSpacing(0)
         names = tap.names
         self.plots, self.curves = [], []
+        # short axis titles (three plots share the height); the window's caption says the rest
         rows = [(", ".join(names[i] for i in inputs), palette.raw_pen(), inputs)]
-        rows += [(f"{name} output", palette.chain_pen(k, 1.0).color(), [i])
+        rows += [(f"chain {name}", palette.chain_pen(k, 1.0).color(), [i])
                  for k, (i, name) in enumerate(chains)]
         for r, (title, pen, streams) in enumerate(rows):
             p = self.addPlot(row=r, col=0)

@@ -322,8 +322,10 @@ def test_to_mapping_is_minimal():
 def test_describe():
     assert describe(spec(type="lowpass", order=4, cutoff_hz=1200)) == \
         "Butterworth low-pass, order 4, 1.2 kHz"
+    # an RC ladder names both corners (issue 13: fc alone misread two loaded
+    # sections' -3 dB point, 0.374 fc: the root of (1 - x^2)^2 + 9 x^2 = 2)
     assert describe(spec(type="rc", r_ohm="10k", c_farad="1n", sections=2, buffered=False)) == \
-        "RC low-pass 10 kΩ / 1 nF x2 (loaded), fc 15.9 kHz"
+        "RC low-pass 10 kΩ / 1 nF x2 (loaded), fc = 1/(2πRC) 15.9 kHz, −3 dB at 5.96 kHz"
     assert describe(spec(type="notch", at_hz=50, harmonics=3)) == "notch 50 Hz x3, Q 30"
     assert describe(spec(type="bandpass", design="chebyshev1", band_hz=[1200, 1550])) == \
         "Chebyshev I band-pass, order 2, 1 dB ripple, 1.2 kHz to 1.55 kHz"
@@ -421,3 +423,21 @@ def test_stage_sos_rechecks_nyquist_at_other_rate():
     s = spec(type="lowpass", cutoff_hz=10000)
     with pytest.raises(SettingError, match=r"^cutoff_hz = 10000: .*Nyquist \(8000 Hz\)"):
         stage_sos(s, 16000.0)
+
+
+def test_rc_label_corners_and_bilinear_departure():
+    # two loaded 10 k / 4.7 n sections: fc = 1/(2 pi R C) = 3386 Hz; the ladder
+    # 1 / ((sRC)^2 + 3 sRC + 1) is -3 dB where (1 - x^2)^2 + 9 x^2 = 2, x = w RC
+    # (closed form), 1267 Hz.  The digital model against the analog one
+    # (scipy.signal.freqs): within 1 dB to 7.5 kHz at 48 kHz, -7.7 dB at 15.8 kHz
+    from livefilt.dsp.design import rc_corner_hz, rc_departure, rc_departure_hz
+    s = spec(type="rc", r_ohm="10k", c_farad="4.7n", sections=2, buffered=False)
+    fc, f3 = rc_corner_hz(s)
+    x2 = (-7 + math.sqrt(49 + 4)) / 2  # x^4 + 7 x^2 - 1 = 0
+    assert fc == pytest.approx(1 / (2 * math.pi * 10e3 * 4.7e-9))
+    assert f3 == pytest.approx(math.sqrt(x2) * fc, rel=1e-9) and f3 == pytest.approx(1267.3, abs=0.1)
+    d = rc_departure(s, 48000.0, [f3, 6300.0, 15800.0])
+    assert abs(d[0]) < 1e-6  # prewarped at the -3 dB point
+    assert -1 < d[1] < -0.5 and -8.5 < d[2] < -7
+    assert rc_departure_hz(s, 48000.0) == pytest.approx(7460, rel=0.01)
+    assert "digital model 1 dB off the analog from 7.4" in describe(s, 48000.0)

@@ -273,10 +273,13 @@ def test_rows_do_not_depend_on_block_split(sizes, out):
 # -- RMS detector ------------------------------------------------------------
 def test_rms_detector_reads_sine_rms():
     # closed form: a sine of amplitude A has rms A/sqrt(2)
+    # window 1.5 s (was 0.3 s: at tau 0.05 s, 24 dB/oct that holds half an
+    # independent sample, and the noise estimate now reads NaN below 2 degrees
+    # of freedom instead of a biased number; livefilt.dsp.noise)
     det = make_detector(DetectorSpec.from_mapping(
-        {"type": "rms", "time_constant_s": 0.05, "noise_window_s": 0.3}, FS), None, FS, 480)
+        {"type": "rms", "time_constant_s": 0.05, "noise_window_s": 1.5}, FS), None, FS, 480)
     assert isinstance(det, RmsDetector)
-    rows = run(det, tone(int(1.5 * FS), 733.0, 0.8))
+    rows = run(det, tone(int(2.5 * FS), 733.0, 0.8))
     last = rows[-1]
     assert last["amplitude"] == pytest.approx(0.8 / math.sqrt(2), rel=1e-4)
     assert last["quadrature"] == 0.0 and math.isnan(last["phase_deg"])
@@ -284,8 +287,11 @@ def test_rms_detector_reads_sine_rms():
 
 
 def test_noise_and_snr_never_raise_on_silence():
+    # 20000 samples (was 1000): the noise estimate now needs 2 effective degrees
+    # of freedom (livefilt.dsp.noise), and 373 settled rows of a 1 ms low-pass
+    # sampled every sample hold far fewer
     det = lockin(tau=0.001, out=1)  # settles (99.9 %) within 627 samples (REFERENCES row 3c)
-    rows = det.process(np.zeros(1000), 0)
+    rows = det.process(np.zeros(20000), 0)
     assert math.isnan(rows[0]["noise"])  # still settling
     assert rows[-1]["noise"] == 0.0
     assert math.isnan(rows[-1]["snr_db"])
@@ -294,19 +300,31 @@ def test_noise_and_snr_never_raise_on_silence():
 
 
 def test_noise_window_uses_what_there_is():
-    # sample variance (ddof 1) of the rows so far, then of the last window only
+    # the sample variance (ddof 1) of the rows so far, then of the last window
+    # only, times the correlation factor (m - 1) / (m - A/m) of WindowTables
+    # (was the plain ddof-1 figure, biased low for correlated rows: issue 13);
+    # NaN below 2 effective degrees of freedom
     det = make_detector(DetectorSpec.from_mapping(
-        {"type": "rms", "time_constant_s": 2 / FS, "noise_window_s": 10 / FS}, FS), None, FS, 1)
+        {"type": "rms", "time_constant_s": 2 / FS, "slope_db_oct": 6,
+         "noise_window_s": 10 / FS}, FS), None, FS, 1)
     # rows while the output low-pass settles (99.9 %, REFERENCES row 3c) read NaN
     # and stay out of the window
     k = int(np.ceil(det.settling_s(0.999) * FS))
     x = np.random.default_rng(3).normal(size=k + 40)
     rows = det.process(x, 0)
     amp = rows["amplitude"]
+    tab = det.tables
     assert np.isnan(rows["noise"][:k]).all() and np.isnan(rows["snr_db"][:k]).all()
     assert math.isnan(rows["noise"][k])  # one row: no variance yet
-    assert rows["noise"][k + 5] == pytest.approx(np.std(amp[k:k + 6], ddof=1), rel=1e-9)
-    assert rows["noise"][k + 30] == pytest.approx(np.std(amp[k + 21:k + 31], ddof=1), rel=1e-9)
+    for j, m in ((5, 6), (30, 10)):
+        got = rows["noise"][k + j]
+        if tab.dof[m] < 2:
+            assert math.isnan(got)
+            continue
+        want = np.std(amp[k + j + 1 - m:k + j + 1], ddof=1) * math.sqrt(tab.factor[m])
+        assert got == pytest.approx(want, rel=1e-9)
+        assert rows["noise_u"][k + j] == pytest.approx(1 / math.sqrt(2 * tab.dof[m]))
+    assert tab.dof[10] >= 2  # the full window does read
     mean = np.mean(amp[k + 21:k + 31])
     assert rows["snr_db"][k + 30] == pytest.approx(20 * np.log10(mean / rows["noise"][k + 30]))
 
@@ -317,7 +335,10 @@ def test_specs_round_trip_and_defaults():
     assert ref == ReferenceSpec(1370.0, 0.0, 1, "square", 0.2)
     assert ReferenceSpec.from_mapping(ref.to_mapping(), FS, 2) == ref
     det = DetectorSpec.from_mapping({"time_constant_s": 0.2}, FS)
-    assert (det.type, det.slope_db_oct, det.sections, det.noise_window_s) == ("lockin", 24, 4, 4.0)
+    # default window: 32 effective degrees of freedom (livefilt.dsp.noise), 149.8
+    # time constants at 24 dB/oct (was 20 time constants, 4 s: 3 independent rows)
+    assert (det.type, det.slope_db_oct, det.sections) == ("lockin", 24, 4)
+    assert det.noise_window_s == pytest.approx(149.8 * 0.2, rel=1e-3)
     assert DetectorSpec.from_mapping(det.to_mapping(), FS) == det
     assert DetectorSpec.from_mapping({"time_constant_s": 0.01}, FS).noise_window_s == 2.0
     assert isinstance(make_detector(det, ref, FS, 100), LockIn)
@@ -350,7 +371,11 @@ def test_reference_setting_errors(table, field, match):
 
 @pytest.mark.parametrize("table,field,match", [
     ({"time_constant_s": 0.1, "order": 2}, "order", "unknown key; known: type"),
-    ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin" or "rms"'),
+    # (the allowed list grew by "boxcar", issue 13 section 5)
+    ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin", "rms" or "boxcar"'),
+    ({"type": "boxcar"}, "settling_s", "is required for a boxcar"),
+    ({"type": "boxcar", "settling_s": 0.1, "time_constant_s": 0.1}, "time_constant_s",
+     "unknown key; known: type, settling_s"),
     ({"type": "rms"}, "time_constant_s", "is required"),
     ({"time_constant_s": "slow"}, "time_constant_s", "must be a finite number"),
     ({"time_constant_s": -1}, "time_constant_s", "at least 2 sample periods, 4.16667e-05 s"),

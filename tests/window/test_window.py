@@ -25,24 +25,13 @@ from livefilt.config import demo_config, load_config, parse_config  # noqa: E402
 from livefilt.stream.engine import Engine  # noqa: E402
 from livefilt.errors import SettingError  # noqa: E402
 from livefilt.runs.record import read_run  # noqa: E402
-from livefilt.window import MainWindow, run_window  # noqa: E402
+from livefilt.window import run_window  # noqa: E402
 from livefilt.dsp.detect import READING_DTYPE  # noqa: E402
 from livefilt.stream.taps import Tap  # noqa: E402
 from livefilt.window.spectrum import welch_db  # noqa: E402
 from livefilt.window.strip import MinMaxReducer  # noqa: E402
 
 FS = 48000.0
-
-
-@pytest.fixture(scope="module")
-def win(qapp):
-    engine = Engine(demo_config(), tap_seconds=60)
-    w = MainWindow(engine)
-    engine.start()
-    w.show()
-    yield w
-    w.close()
-    assert engine.error is None
 
 
 def shot(w, artifacts, name):
@@ -165,6 +154,8 @@ def test_welch_matches_scipy():
 
 
 def test_window_opens_and_plots_receive_data(win, qtbot, artifacts):
+    assert win.room() == "range"  # the walk-away room opens first
+    win.show_room("signals")  # the strip and the spectrum draw only when on screen
     qtbot.waitUntil(lambda: win.strip.drawn_index > FS * 1.5, timeout=8000)
     qtbot.waitUntil(lambda: all(len(h.t) > 10 for h in win.histories.values()), timeout=8000)
     for c in win.strip.curves:
@@ -173,13 +164,15 @@ def test_window_opens_and_plots_receive_data(win, qtbot, artifacts):
     win.spectrum.refresh()
     for c in win.spectrum.curves:
         assert len(c.getData()[0]) > 100
-    qtbot.waitUntil(lambda: win.readout.labels["A"][0].text() != "—", timeout=3000)
-    assert "FS" in win.readout.labels["A"][0].text()
-    assert "dB" in win.readout.diff.text()
+    qtbot.waitUntil(lambda: win.verdict.labels["A"][0].text() != "—", timeout=3000)
+    assert "FS" in win.verdict.labels["A"][0].text()
+    qtbot.waitUntil(lambda: "better than" in win.verdict.verdict.text(), timeout=5000)
     shot(win, artifacts, "running")
+    win.show_room("range")
 
 
 def test_cutoff_edit_changes_running_chain(win, qtbot, artifacts):
+    win.show_room("chains")
     chain = win.engine.chains[0]
     f = np.array([150.0, 400.0, 700.0])
     before = chain.response(f)
@@ -235,7 +228,7 @@ def test_reference_edit_moves_every_lockin_and_saves(win, qtbot, tmp_path, artif
     assert bad.error.text().startswith("reference.frequency_hz = 30000:")
     shot(win, artifacts, "reference_refused")
     commit(ref.fields["frequency_hz"], "1371.5")
-    assert not bad.error.isVisible() and "lock-in reference (set here)" == ref.title()
+    assert not bad.error.isVisible() and "Lock-in reference (set here)" == ref.title()
     qtbot.waitUntil(lambda: newest_ref_hz("A") == 1371.5 and newest_ref_hz("B") == 1371.5,
                     timeout=3000)
     assert win.spectrum.marks[0].value() == pytest.approx(np.log10(1371.5))
@@ -291,10 +284,10 @@ def test_copy_a_to_b_and_saved_settings_load_back(win, qtbot, tmp_path, artifact
     win.settings_panel.tabs.setCurrentIndex(1)
     shot(win, artifacts, "copied_to_b")
     win.settings_panel.tabs.setCurrentIndex(0)
+    win.show_room("range")
 
 
 def test_recording_with_markers_gives_readable_run(win, qtbot, tmp_path, artifacts):
-    win.tabs.setCurrentIndex(1)
     rec = win.record.start(tmp_path)
     assert rec is not None and win.record.recording
     win.notes.distance.setText("1.5")
@@ -317,7 +310,7 @@ def test_recording_with_markers_gives_readable_run(win, qtbot, tmp_path, artifac
     assert run.raw.shape[0] > FS * 0.5 and run.raw.shape[1] == 2
     assert len(run.chain_rows("A")["amplitude"]) > 5
     assert len(win.strip._markers) >= 2  # drawn on the strip
-    win.tabs.setCurrentIndex(0)
+    assert len(win.strength._markers) >= 2  # and on the strength time line
 
 
 @pytest.mark.slow
