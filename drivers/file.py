@@ -1,8 +1,10 @@
-"""Replay a recording: WAV files (int16, int24, int32, float32/64; any rate and
-channel count; RF64) or a livefilt run folder (its raw.wav, with the channel
-names, units and reference of the original run; its distance markers are
-carried into the new run, and :meth:`FileSource.info` names the run replayed:
-``replay_of``, ``replay_of_started_utc``).
+"""Replay a recording: any file soundfile reads (WAV int8..32 and float, RF64,
+W64, FLAC, AIFF; any rate and channel count) or a livefilt run folder (its
+raw.wav, with the channel names, units and reference of the original run; its
+distance markers are carried into the new run, and :meth:`FileSource.info`
+names the run replayed: ``replay_of``, ``replay_of_started_utc``).
+What is wrong with a damaged file is said once, in one line (see
+:mod:`livefilt.runs.wavio`); a file with no frames is an error.
 
 Options (``[source]`` table, or ``livefilt run --input PATH [--fast]``)
 -----------------------------------------------------------------------
@@ -16,10 +18,12 @@ loop : bool, default false
 
 from __future__ import annotations
 
+import hashlib
 import threading
 import tomllib
 from pathlib import Path
 
+from livefilt import fields
 from livefilt.errors import RecordingError, SettingError, SourceError
 from livefilt.threads import Worker
 from livefilt.acquire.source import Pacer, Source
@@ -27,7 +31,7 @@ from livefilt.runs.wavio import WavReader
 
 __all__ = ["FileSource"]
 
-_PIECE = 4096
+_PIECE = 16384
 
 
 class FileSource(Source):
@@ -56,13 +60,14 @@ class FileSource(Source):
         path = options.get("path")
         if not isinstance(path, str) or not path:
             raise SettingError("source.path", path, "must name a .wav file or a run folder")
-        pace = options.get("pace", "realtime")
-        if pace not in ("realtime", "fast"):
-            raise SettingError("source.pace", pace, 'must be "realtime" or "fast"')
-        loop = options.get("loop", False)
-        if not isinstance(loop, bool):
-            raise SettingError("source.loop", loop, "must be true or false")
-        return cls(path, pace, loop, block)
+        try:
+            pace = fields.choice(options.get("pace", "realtime"), "pace", ("realtime", "fast"))
+            loop = fields.boolean(options.get("loop", False), "loop")
+        except SettingError as e:
+            raise e.within("source") from None
+        src = cls(path, pace, loop, block)
+        src.resolved = {"path": path, "pace": pace, "loop": loop}
+        return src
 
     @classmethod
     def probe(cls):
@@ -100,6 +105,9 @@ class FileSource(Source):
                                    "phase_deg": ref.get("phase_deg", 0.0)}
         self.device = f"{p} ({r.sample_format}, {r.channels} ch, {r.rate_hz:g} Hz, {r.frames / r.rate_hz:.1f} s)"
         self.frames_total = r.frames
+        self.resolution_bits = r.bits
+        self._wav = Path(wav).resolve()
+        self.notes = list(r.notes)
         self.length_s = None if self.loop else r.frames / r.rate_hz
         # a replayed run carries its markers and says where it came from
         self.markers = [{k: m[k] for k in ("time_s", "distance_m", "note") if k in m}
@@ -146,8 +154,23 @@ class FileSource(Source):
         return {"position_s": (r.position / r.rate_hz) if r else 0.0}
 
     def info(self):
+        """Also the input itself: absolute path, size and SHA-256 (so a result can
+        be traced to the exact bytes it came from), and what was wrong with it."""
         d = super().info()
-        d["path"] = str(self.path)
+        d["path"] = str(self.path.resolve())
         if getattr(self, "_replay_of", None):
             d.update(self._replay_of)
+        wav = getattr(self, "_wav", None)
+        if wav is not None:
+            d["input"] = {"path": str(wav), "bytes": wav.stat().st_size, "sha256": _sha256(wav)}
+            if self.notes:
+                d["input"]["notes"] = list(self.notes)
         return d
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()

@@ -51,6 +51,7 @@ from typing import Any
 
 import numpy as np
 
+from livefilt import fields
 from livefilt.errors import SettingError, SourceError, SourceUnavailable
 from livefilt.acquire.source import DeviceInfo, Source
 
@@ -125,13 +126,9 @@ class SerialSource(Source):
         if not isinstance(port, str) or not port.strip():
             raise SettingError("port", port, "required: a device path (/dev/ttyACM0, COM3) "
                                              "or a pyserial URL (socket://host:port)")
-        baud = options.get("baud", DEFAULT_BAUD)
-        if isinstance(baud, bool) or not isinstance(baud, int) or baud <= 0:
-            raise SettingError("baud", baud, "must be a whole number of bit/s above 0, "
-                                             f"e.g. {DEFAULT_BAUD}")
-        fmt = options.get("format", "framed")
-        if fmt not in _FORMATS:
-            raise SettingError("format", fmt, 'must be "framed" or "text"')
+        baud = fields.integer(options.get("baud", DEFAULT_BAUD), "baud", 1, None,
+                              f"must be a whole number of bit/s above 0, e.g. {DEFAULT_BAUD}")
+        fmt = fields.choice(options.get("format", "framed"), "format", _FORMATS)
         text_only = [k for k in ("channels", "full_scale") if k in options]
         if fmt == "framed" and text_only:
             raise SettingError(text_only[0], options[text_only[0]],
@@ -139,16 +136,18 @@ class SerialSource(Source):
         if fmt == "text" and "describe_timeout_s" in options:
             raise SettingError("describe_timeout_s", options["describe_timeout_s"],
                                'only for format = "framed"')
-        channels = options.get("channels", 1)
-        if isinstance(channels, bool) or not isinstance(channels, int) or not 1 <= channels <= 64:
-            raise SettingError("channels", channels, "must be a whole number from 1 to 64")
-        full_scale = _positive(options, "full_scale", 1.0)
-        timeout = _positive(options, "describe_timeout_s", 3.0)
+        channels = fields.integer(options.get("channels", 1), "channels", 1, 64)
+        full_scale = fields.positive(options.get("full_scale", 1.0), "full_scale")
+        timeout = fields.positive(options.get("describe_timeout_s", 3.0), "describe_timeout_s")
         if fmt == "text" and not (isinstance(rate_hz, (int, float)) and rate_hz > 0):
             raise SettingError("rate_hz", rate_hz,
                                'format = "text" needs the board\'s sample rate in Hz, above 0')
-        return cls(port.strip(), baud, fmt, channels, float(full_scale), float(timeout),
+        src = cls(port.strip(), baud, fmt, channels, float(full_scale), float(timeout),
                    rate_hz if fmt == "text" else 0.0)
+        src.resolved = {"port": port.strip(), "baud": baud, "format": fmt}
+        src.resolved.update({"channels": channels, "full_scale": float(full_scale)} if fmt == "text"
+                            else {"describe_timeout_s": float(timeout)})
+        return src
 
     @classmethod
     def probe(cls) -> list[DeviceInfo]:
@@ -181,6 +180,7 @@ class SerialSource(Source):
             self.channel_names.append("led")
         self.channels = len(self.channel_names)
         self.units = "V"
+        self.resolution_bits = desc.adc_bits
         self.device = (f"{desc.name or 'board'} on {self.port}: {desc.channels} x "
                        f"{desc.adc_bits}-bit at {desc.rate_hz:g} Hz, reference {desc.vref_v:g} V")
         self.reference_hint = ({"frequency_hz": desc.modulation_hz}
@@ -224,6 +224,19 @@ class SerialSource(Source):
             "last_seq": p.last_seq if p else None,
             "last_problem": self._last_problem,
         }
+
+    def clip_levels(self):
+        """Framed: a unipolar ADC, at full scale on code 0 or the top code
+        ``(2**bits - 1) / 2**bits * vref`` (to_frames' transfer); the LED column
+        never clips.  Text: +-full scale."""
+        d = getattr(self, "description", None)
+        if self.format != "framed" or d is None:
+            return super().clip_levels()
+        lo = np.zeros(self.channels)
+        hi = np.full(self.channels, d.vref_v * ((1 << d.adc_bits) - 1) / (1 << d.adc_bits))
+        if d.led_channel is not None:
+            lo[-1], hi[-1] = -np.inf, np.inf
+        return lo, hi
 
     def info(self) -> dict[str, Any]:
         """run.toml facts: the base facts, port settings, the board's description
@@ -419,13 +432,6 @@ def _blocks_between(last_seq: int, seq: int, expected: float, tolerance: float) 
     wraps = max(0, round((expected - base) / wire.SEQ_MODULO))
     blocks = base + wraps * wire.SEQ_MODULO
     return blocks if abs(blocks - expected) <= tolerance else None
-
-
-def _positive(options: dict, key: str, default: float) -> float:
-    value = options.get(key, default)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not value > 0:
-        raise SettingError(key, value, "must be a number above 0")
-    return float(value)
 
 
 def _pyserial():

@@ -67,6 +67,7 @@ import threading
 
 import numpy as np
 
+from livefilt import fields
 from livefilt.errors import SettingError
 from livefilt.threads import Worker
 from livefilt.acquire.source import DeviceInfo, Pacer, Source
@@ -246,6 +247,7 @@ class SimulatedSource(Source):
         self.scene = Scene(self.rate_hz, led_hz, mains_hz, target, distance_m, seed,
                            walk_m, hold_s, move_s)
         self.scene.adc_bits = int(adc_bits)
+        self.resolution_bits = int(adc_bits)  # the simulated ADC's codes (clip levels, warnings)
         self.sky = sky
         self.device = (f"greenhouse bench (simulated, seed {seed}, LED {led_hz:g} Hz, "
                        f"mains {mains_hz:g} Hz, {target}"
@@ -326,6 +328,9 @@ class SimulatedSource(Source):
                   None if dist is None else float(dist), walk, times["hold_s"], times["move_s"], sky, bits,
                   float(ramp), None if step_s is None else float(step_s), float(step))
         src._block = next(b for b in (block, 256, 128, 64, 32, 16) if CHUNK % b == 0)
+        src.resolved = {"seed": seed, "pace": pace, "led_hz": float(led), "mains_hz": float(mains),
+                        "target": target, "distance_m": None if dist is None else float(dist),
+                        "walk_m": walk, **times, "sky": sky, "adc_bits": bits}
         return src
 
     @classmethod
@@ -438,6 +443,10 @@ class SimulatedSource(Source):
 
     def distance_now(self) -> float:
         return float(self.scene.distance(self._index / self.rate_hz))
+
+    def distance_at(self, index: int) -> float:
+        """The target's distance at acquisition sample ``index``, m."""
+        return float(self.scene.distance(index / self.rate_hz))
 
     # -- running -------------------------------------------------------
     def start(self, ring) -> None:

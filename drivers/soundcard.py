@@ -112,6 +112,7 @@ from typing import Any
 
 import numpy as np
 
+from livefilt import fields
 from livefilt.errors import SettingError, SourceError, SourceUnavailable
 from livefilt.acquire.source import DeviceInfo, Source
 
@@ -185,34 +186,30 @@ class DriveSpec:
         if not isinstance(table, dict):
             raise SettingError("", table, "must be a table {output_channel, waveform, "
                                "frequency_hz, duty, amplitude}")
-        Source.check_unknown(table, _DRIVE_KEYS)
-        waveform = table.get("waveform", "square")
-        if waveform not in _WAVEFORMS:
-            raise SettingError("waveform", waveform, 'must be "square" or "sine"')
+        fields.check_keys(table, _DRIVE_KEYS, "a drive table")
+        waveform = fields.choice(table.get("waveform", "square"), "waveform", _WAVEFORMS)
         if "frequency_hz" not in table:
             raise SettingError("frequency_hz", None, "required: the modulation frequency, Hz")
-        freq = _number(table, "frequency_hz")
+        freq = fields.real(table.get("frequency_hz"), "frequency_hz")
         if not 1 / MAX_TABLE_S <= freq < rate_hz / 2:
             raise SettingError("frequency_hz", table["frequency_hz"],
                                f"must be at least {1 / MAX_TABLE_S:g} Hz and below Nyquist, "
                                f"{rate_hz / 2:g} Hz")
         if "duty" in table and waveform != "square":
             raise SettingError("duty", table["duty"], 'only for waveform = "square"')
-        duty = _number(table, "duty", 0.5)
+        duty = fields.real(table.get("duty", 0.5), "duty")
         if not 0 < duty < 1:
             raise SettingError("duty", table["duty"], "must be above 0 and below 1")
         if "amplitude" not in table:
             raise SettingError("amplitude", None,
                                "required: drive level, above 0 and at most 1 (full scale)")
-        amplitude = _number(table, "amplitude")
+        amplitude = fields.real(table.get("amplitude"), "amplitude")
         if not 0 < amplitude <= 1:
             raise SettingError("amplitude", table["amplitude"],
                                "must be above 0 and at most 1 (full scale)")
-        out = _channel(table, "output_channel", 0)
-        loop = _channel(table, "loopback_channel", None)
-        measure = table.get("measure_delay", True)
-        if not isinstance(measure, bool):
-            raise SettingError("measure_delay", measure, "must be true or false")
+        out = fields.channel(table.get("output_channel", 0), "output_channel")
+        loop = fields.channel(table.get("loopback_channel", None), "loopback_channel")
+        measure = fields.boolean(table.get("measure_delay", True), "measure_delay")
         return cls(out, waveform, freq, duty, amplitude, loop, measure)
 
     def table(self, rate_hz: float) -> tuple[np.ndarray, float]:
@@ -267,6 +264,7 @@ class SoundCardSource(Source):
         self.channel_names = [f"in{c}" for c in self.input_channels] + (
             ["reference"] if reference_channel is not None else [])
         self.units = "V" if volts_full_scale is not None else "FS"
+        self.full_scale = volts_full_scale if volts_full_scale is not None else 1.0
         self.device = "" if device is None else str(device)
         self.reference_hint = None
         #: Output-to-input delay in whole frames (None until measured).
@@ -282,11 +280,9 @@ class SoundCardSource(Source):
     def from_settings(cls, options: dict[str, Any], rate_hz: float, block: int) -> "SoundCardSource":
         """Validate the ``[source]`` table's sound-card keys (fields relative to ``source``)."""
         cls.check_unknown(options, _OPTIONS)
-        if isinstance(rate_hz, bool) or not isinstance(rate_hz, (int, float)) \
-                or not math.isfinite(rate_hz) or rate_hz <= 0:
-            raise SettingError("rate_hz", rate_hz, "must be a sample rate above 0 Hz")
-        if isinstance(block, bool) or not isinstance(block, int) or not 1 <= block <= 65536:
-            raise SettingError("block", block, "must be a whole number of frames, 1 to 65536")
+        fields.number(rate_hz, "rate_hz", 0, None, inclusive=False,
+                      allowed="must be a sample rate above 0 Hz")
+        fields.integer(block, "block", 1, 65536, "must be a whole number of frames, 1 to 65536")
         device = options.get("device")
         if device is not None:
             if isinstance(device, bool) or not isinstance(device, (int, str)) \
@@ -303,7 +299,7 @@ class SoundCardSource(Source):
                                "must be a list of input channel numbers, 0-based (e.g. [0])")
         if len(set(channels)) != len(channels):
             raise SettingError("channels", channels, "must not repeat a channel")
-        reference = _channel(options, "reference_channel", None)
+        reference = fields.channel(options.get("reference_channel", None), "reference_channel")
         if reference is not None and reference in channels:
             raise SettingError("reference_channel", reference,
                                "must differ from the detector channels " + str(channels))
@@ -314,7 +310,7 @@ class SoundCardSource(Source):
             raise SettingError("latency", latency, '"low", "high" or seconds (0 < s <= 2)')
         vfs = None
         if "volts_full_scale" in options:
-            vfs = _number(options, "volts_full_scale")
+            vfs = fields.real(options.get("volts_full_scale"), "volts_full_scale")
             if not 0 < vfs < math.inf:
                 raise SettingError("volts_full_scale", options["volts_full_scale"],
                                    "must be volts above 0 (the input voltage of a 1.0 sample)")
@@ -324,7 +320,10 @@ class SoundCardSource(Source):
                 drive = DriveSpec.from_mapping(options["drive"], float(rate_hz))
             except SettingError as exc:
                 raise exc.within("drive") from None
-        return cls(rate_hz, block, device, channels, reference, latency, vfs, drive)
+        src = cls(rate_hz, block, device, channels, reference, latency, vfs, drive)
+        src.resolved = {"device": device, "channels": channels, "reference_channel": reference,
+                        "latency": latency, "volts_full_scale": vfs}
+        return src
 
     @classmethod
     def probe(cls) -> list[DeviceInfo]:
@@ -430,6 +429,13 @@ class SoundCardSource(Source):
         except Exception as exc:  # a device that vanished: nothing left to release
             log.warning("closing %s: %s", self.device, exc)
         self._state = "stopped"
+
+    def clip_levels(self):
+        """+-full scale, the positive side at a 16-bit converter's top code
+        (32767/32768): PortAudio hands over float32 whatever the converter's
+        depth, and that code is as far as a 16-bit card goes (common practice)."""
+        lo, hi = super().clip_levels()
+        return lo, hi * (1.0 - 2.0 ** -15)
 
     def info(self) -> dict[str, Any]:
         """Facts for run.toml (no None values: TOML has no null)."""
@@ -708,18 +714,3 @@ def _find_burst(rec: np.ndarray, burst: np.ndarray) -> tuple[int, float]:
     margin = float(corr[k]) / second if second > 0 else (math.inf if corr[k] > 0 else 0.0)
     return k, margin
 
-
-def _number(table: dict, key: str, default=None) -> float:
-    value = table.get(key, default)
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise SettingError(key, value, "must be a number")
-    return float(value)
-
-
-def _channel(table: dict, key: str, default):
-    value = table.get(key, default)
-    if value is None:
-        return None
-    if isinstance(value, bool) or not isinstance(value, int) or value < 0:
-        raise SettingError(key, value, "must be a channel number, 0-based (0 or more)")
-    return value

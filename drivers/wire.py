@@ -364,7 +364,9 @@ class FrameParser:
                 if self._synced and start >= self._bad_until:
                     self.crc_errors += 1
                     events.append(CrcError(start, end - j))
-                self._bad_until = max(self._bad_until, self._base + end)
+                    # only a counted bad frame covers its bytes: a false candidate
+                    # inside it must not hide the bytes past its end from the count
+                    self._bad_until = self._base + end
                 # the sync word may have been a false one: look again one byte on
                 self._discard(j, j + 1, events)
                 i = j + 1

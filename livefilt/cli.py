@@ -170,7 +170,7 @@ def cmd_run(args) -> int:
         return 1
     if args.out and engine.stats.frames:
         print(f"saved {engine.stats.frames} frames ({engine.stats.frames / engine.rate_hz:.2f} s) "
-              f"to {args.out}", file=sys.stderr)
+              f"to {rec.folder}", file=sys.stderr)
     return 0
 
 
@@ -185,7 +185,9 @@ def _has_display() -> bool:
 def cmd_live(args) -> int:
     if not _has_display() and not args.screenshot:
         print("livefilt: no display found (DISPLAY/WAYLAND_DISPLAY unset): showing the terminal "
-              "read-out instead", file=sys.stderr)
+              "read-out instead; " + ("it stops after --duration or on Ctrl-C" if args.duration
+                                      else "press Ctrl-C to stop (or give --duration S)"),
+              file=sys.stderr)
         return cmd_run(args)
     if args.screenshot and not _has_display():
         os.environ["QT_QPA_PLATFORM"] = "offscreen"

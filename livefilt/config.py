@@ -23,26 +23,28 @@ from importlib import resources
 from pathlib import Path
 from typing import Any, Mapping
 
+import tomli_w
+
+from livefilt import fields
 from livefilt.dsp.design import StageSpec
 from livefilt.dsp.detect import DetectorSpec, ReferenceSpec
 from livefilt.dsp.frontend import Frontend
 from livefilt.dsp.predict import DesignSpec
 from livefilt.errors import SettingError
-from livefilt.tomlout import dumps
 
 __all__ = ["Settings", "SourceSettings", "ChainSettings", "OutputSettings",
-           "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS"]
+           "load_config", "parse_config", "demo_config", "parse_chain", "MAX_CHANNELS",
+           "toml_text"]
 
 #: Upper bound used for channel checks before the source is open; the engine
 #: re-checks against the real channel count.
 MAX_CHANNELS = 64
 
-_TOP = {"source", "reference", "chains", "output", "frontend", "design"}
+_TOP = ("source", "reference", "chains", "output", "frontend", "design")
 #: Mains frequencies the world uses (REFERENCES row 8; IEC 60196).
 MAINS_HZ = (50.0, 60.0)
-_SOURCE_COMMON = {"driver", "rate_hz", "block"}
-_CHAIN = {"name", "input", "stages", "detector"}
-_OUTPUT = {"interval_s"}
+_CHAIN = ("name", "input", "stages", "detector")
+_OUTPUT = ("interval_s",)
 
 
 @dataclass(frozen=True)
@@ -118,7 +120,7 @@ class Settings:
 
     def to_toml(self, header: str = "") -> str:
         """TOML text that :func:`parse_config` reads back to equal settings."""
-        return dumps(self.to_mapping(), header=header)
+        return toml_text(self.to_mapping(), header=header)
 
     def at_rate(self, rate_hz: float, channels: int = MAX_CHANNELS) -> "Settings":
         """Re-validate every rate-dependent value at ``rate_hz`` (a source that
@@ -133,6 +135,29 @@ class Settings:
         return replace(self, chains=tuple(chains))
 
 
+def toml_text(doc: Mapping, header: str = "") -> str:
+    """``doc`` as TOML text (tomli-w), ``header`` lines first as comments.
+
+    ``None`` values are left out and numpy scalars become Python numbers, so
+    a settings mapping, run.toml or a report's results can go in as they are.
+    Floats are written as their shortest round-trip ``repr``.
+    """
+    lines = "".join(f"# {h}\n".replace("# \n", "#\n") for h in header.splitlines())
+    return lines + tomli_w.dumps(_plain(doc))
+
+
+def _plain(v: Any) -> Any:
+    if isinstance(v, Mapping):
+        return {str(k): _plain(x) for k, x in v.items() if x is not None}
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v if x is not None]
+    if hasattr(v, "item") and not isinstance(v, (str, bytes)):
+        return _plain(v.item())
+    if isinstance(v, Path):
+        return str(v)
+    return v
+
+
 def _num(x: float) -> float | int:
     return int(x) if float(x).is_integer() else float(x)
 
@@ -144,22 +169,21 @@ def _table(doc: Mapping, key: str, path: str) -> Mapping:
     return v
 
 
-def _unknown(table: Mapping, known: set, path: str) -> None:
-    for k in table:
-        if k not in known:
-            raise SettingError(f"{path}.{k}" if path else k, table[k],
-                               "unknown key; allowed: " + ", ".join(sorted(known)))
+def _unknown(table: Mapping, known: tuple, path: str, what: str) -> None:
+    try:
+        fields.check_keys(table, known, what)
+    except SettingError as e:
+        raise (e.within(path) if path else e) from None
 
 
 def _positive_number(v: Any, path: str, what: str) -> float:
-    if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
-        raise SettingError(path, v, f"must be a positive number ({what})")
-    return float(v)
+    return fields.number(v, path, 0, None, inclusive=False,
+                         allowed=f"must be a positive number ({what})")
 
 
 def parse_source(table: Mapping) -> SourceSettings:
     """Validate the common keys of ``[source]``; the driver checks the rest."""
-    from livefilt.acquire.source import driver_names
+    from livefilt.acquire.source import SOURCE_KEYS, driver_names
 
     driver = table.get("driver", "simulated")
     if driver not in driver_names():
@@ -168,10 +192,9 @@ def parse_source(table: Mapping) -> SourceSettings:
     rate = _positive_number(table.get("rate_hz", 48000), "source.rate_hz", "samples per second")
     if not 100 <= rate <= 1_000_000:
         raise SettingError("source.rate_hz", table.get("rate_hz"), "must be between 100 and 1000000 Hz")
-    block = table.get("block", 256)
-    if isinstance(block, bool) or not isinstance(block, int) or not 16 <= block <= 65536:
-        raise SettingError("source.block", block, "must be a whole number of frames from 16 to 65536")
-    options = {k: v for k, v in table.items() if k not in _SOURCE_COMMON}
+    block = fields.integer(table.get("block", 256), "source.block", 16, 65536,
+                           "must be a whole number of frames from 16 to 65536")
+    options = {k: v for k, v in table.items() if k not in SOURCE_KEYS}
     return SourceSettings(driver, rate, block, options)
 
 
@@ -180,7 +203,7 @@ def parse_chain(table: Mapping, fs: float, index: int = 0, channels: int = MAX_C
     path = f"chains[{index}]"
     if not isinstance(table, Mapping):
         raise SettingError(path, table, "must be a table")
-    _unknown(table, _CHAIN, path)
+    _unknown(table, _CHAIN, path, "a chain")
     name = table.get("name", "AB"[index] if index < 2 else f"C{index}")
     if not isinstance(name, str) or not name.strip() or len(name) > 24:
         raise SettingError(f"{path}.name", name, "must be a short non-empty text (at most 24 characters)")
@@ -219,7 +242,7 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
     SettingError
         The first invalid value, with its full field path.
     """
-    _unknown(doc, _TOP, "")
+    _unknown(doc, _TOP, "", "a config")
     src_table = _table(doc, "source", "source")
     ref_table = doc.get("reference")
     if ref_table is not None and not isinstance(ref_table, Mapping):
@@ -248,7 +271,7 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
             raise SettingError(f"chains[{i}].detector.type", "lockin",
                                "a lock-in needs a [reference] table with frequency_hz or channel")
     out_t = _table(doc, "output", "output")
-    _unknown(out_t, _OUTPUT, "output")
+    _unknown(out_t, _OUTPUT, "output", "[output]")
     interval = _positive_number(out_t.get("interval_s", 0.05), "output.interval_s", "seconds")
     if interval * fs < 1 or interval > 60:
         raise SettingError("output.interval_s", out_t.get("interval_s"),

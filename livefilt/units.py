@@ -12,18 +12,23 @@ __all__ = ["si", "level_db", "level_unit"]
 _PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
 
 
-def si(x: float, unit: str, digits: int = 4) -> str:
-    """``0.001234, "V"`` -> ``"1.234 mV"``; NaN -> ``"—"``."""
+def si(x: float, unit: str, digits: int = 4, fixed: bool = False) -> str:
+    """``0.001234, "V"`` -> ``"1.234 mV"``; NaN -> ``"—"``.
+
+    ``fixed``: always ``digits`` significant digits, trailing zeros kept
+    (``42.00 µFS``, ``8.524 µFS``), so a column of readings keeps its width.
+    """
     if x is None or not math.isfinite(x):
         return "—"
     if x == 0:
-        return f"0 {unit}"
+        return (f"{0:.{digits - 1}f} {unit}" if fixed else f"0 {unit}")
     a = abs(x)
     scale, p = _PREFIX[0]
     for s, pre in _PREFIX:
-        if a >= s * 0.9995:
+        if a >= s * (1 - 0.5 * 10.0 ** (1 - digits)):
             scale, p = s, pre
-    return f"{x / scale:.{digits}g} {p}{unit}"
+    text = f"{x / scale:{'#' if fixed else ''}.{digits}g}".rstrip(".")
+    return f"{text} {p}{unit}"
 
 
 def level_db(rms, units: str):

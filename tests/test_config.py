@@ -78,7 +78,7 @@ def test_at_rate_rechecks_against_the_new_nyquist():
 def test_cli_reports_one_line_and_exit_2(tmp_path):
     d = demo_doc()
     d["chains"][0]["stages"][0]["cutoff_hz"] = 30000
-    from livefilt.tomlout import dumps
+    from livefilt.config import toml_text as dumps
     p = tmp_path / "bad.toml"
     p.write_text(dumps(d))
     r = subprocess.run([sys.executable, "-m", "livefilt", "run", "--config", str(p), "--duration", "0.1"],
@@ -118,3 +118,98 @@ def test_mains_hz_from_reference_or_source():
     assert s.mains_hz == 60.0 and "mains_hz" not in s.source.options  # not the card's option
     assert parse_config(s.to_mapping()).mains_hz == 60.0
     assert demo_config().mains_hz == 50.0 and demo_config().source.options["mains_hz"] == 50.0
+# -- fuzzing the loader: random documents and mutated valid configs ------------------
+from hypothesis import given, strategies as st  # noqa: E402
+
+from livefilt.errors import LivefiltError  # noqa: E402
+from tests.fuzzing import examples  # noqa: E402
+
+_scalars = st.one_of(st.integers(-10 ** 6, 10 ** 6), st.floats(allow_nan=True),
+                     st.booleans(), st.text(max_size=12),
+                     st.sampled_from(["lowpass", "lockin", "rms", "4k7", "22n", "butterworth",
+                                      "simulated", "file", "soundcard", "serial", "sine"]))
+_values = st.recursive(_scalars, lambda kids: st.one_of(
+    st.lists(kids, max_size=4), st.dictionaries(st.text(max_size=10), kids, max_size=4)),
+    max_leaves=12)
+_KEYS = ["source", "reference", "chains", "output", "stages", "detector", "type", "cutoff_hz",
+         "band_hz", "order", "design", "rate_hz", "block", "driver", "frequency_hz",
+         "time_constant_s", "interval_s", "input", "name", "at_hz", "r_ohm", "c_farad", "q"]
+
+
+def _paths(doc, prefix=()):
+    yield prefix
+    if isinstance(doc, dict):
+        for k, v in doc.items():
+            yield from _paths(v, prefix + (k,))
+    elif isinstance(doc, list):
+        for i, v in enumerate(doc):
+            yield from _paths(v, prefix + (i,))
+
+
+def _load_says_one_line(doc) -> None:
+    """The loader's contract: settings, or a LivefiltError of one line."""
+    from livefilt.stream.engine import build_source
+    try:
+        s = parse_config(doc)
+        build_source(s)  # the driver's own keys
+    except LivefiltError as e:
+        assert "\n" not in str(e) and str(e)
+    # anything else (TypeError, KeyError, ...) fails the test with its traceback
+
+
+@examples(300)
+@given(doc=st.dictionaries(st.sampled_from(_KEYS), _values, max_size=5))
+def test_fuzz_random_documents_never_raise_anything_else(doc):
+    _load_says_one_line(doc)
+
+
+@examples(120)
+@given(data=st.data())
+def test_fuzz_mutated_valid_configs(data):
+    import copy
+    doc = copy.deepcopy(demo_doc())
+    paths = [p for p in _paths(doc) if p]
+    for _ in range(data.draw(st.integers(1, 3))):
+        path = data.draw(st.sampled_from(paths))
+        parent = doc
+        try:
+            for k in path[:-1]:
+                parent = parent[k]
+            action = data.draw(st.sampled_from(["replace", "delete", "add"]))
+            if action == "replace":
+                parent[path[-1]] = data.draw(_values)
+            elif action == "delete":
+                del parent[path[-1]]
+            elif isinstance(parent, dict):
+                parent[data.draw(st.sampled_from(_KEYS))] = data.draw(_values)
+        except (KeyError, IndexError, TypeError):
+            pass  # an earlier mutation removed or replaced this path
+    _load_says_one_line(doc)
+
+
+@examples(60)
+@given(text=st.one_of(st.text(max_size=200),
+                      st.builds(lambda d: tomli_w_dumps(d), st.dictionaries(
+                          st.sampled_from(_KEYS), _values, max_size=4))))
+def test_fuzz_config_files_through_the_cli_exit_2_with_one_line(tmp_path_factory, text):
+    import contextlib
+    import io
+    from livefilt import cli
+    p = tmp_path_factory.mktemp("fuzz") / "c.toml"
+    p.write_text(text, encoding="utf-8")
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        code = cli.main(["run", "--config", str(p), "--duration", "0.05", "--fast"])
+    lines = err.getvalue().strip().splitlines()
+    if code == 2:
+        assert len(lines) == 1 and lines[0].startswith("livefilt: "), err.getvalue()
+    else:
+        assert code == 0 and "Traceback" not in err.getvalue()
+
+
+def tomli_w_dumps(d):
+    import tomli_w
+    try:
+        return tomli_w.dumps(d)
+    except (TypeError, ValueError):  # NaN keys or values tomli-w cannot write: raw text
+        return repr(d)

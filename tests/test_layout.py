@@ -16,7 +16,7 @@ ROOT = pathlib.Path(__file__).resolve().parents[1]
 
 # Layer of each box, and the boxes it may import (besides itself).
 FOUNDATION = {"livefilt", "livefilt.errors", "livefilt.fields", "livefilt.units",
-              "livefilt.tomlout", "livefilt.progress", "livefilt.threads",
+              "livefilt.progress", "livefilt.threads",
               "livefilt.safety"}
 ALLOWED = {
     "foundation": set(),

@@ -33,13 +33,20 @@ import time
 from importlib import metadata
 from typing import Any, ClassVar
 
+import numpy as np
+
+from livefilt import fields
 from livefilt.errors import SettingError, SourceUnavailable
 
-__all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP"]
+__all__ = ["Source", "DeviceInfo", "Pacer", "driver_names", "load_driver", "ENTRY_POINT_GROUP",
+           "SOURCE_KEYS"]
 
 log = logging.getLogger(__name__)
 
 ENTRY_POINT_GROUP = "livefilt.drivers"
+
+#: Keys every ``[source]`` table takes, whatever the driver.
+SOURCE_KEYS = ("driver", "rate_hz", "block")
 
 
 class DeviceInfo(dict):
@@ -75,6 +82,10 @@ class Source:
     reference_hint : dict or None
         What the source knows about the modulation (``frequency_hz``,
         ``phase_deg``), e.g. from a firmware's self-description.
+    full_scale : float
+        The sample value of full scale in ``units`` (1.0 for FS).
+    resolution_bits : int or None
+        Bits per sample of an integer digitizer or file (None: float or unknown).
     markers : list of dict
         Distance markers the source knows in advance (``time_s`` of its data,
         ``distance_m`` or none while the target moves, ``note``): a simulated
@@ -95,6 +106,11 @@ class Source:
     device: str = ""
     realtime: bool = True
     reference_hint: dict | None = None
+    full_scale: float = 1.0
+    resolution_bits: int | None = None
+    #: The driver's options as used, defaults filled in (None: unset); run.toml
+    #: saves them so a replay with a later version reads the same.
+    resolved: dict[str, Any] = {}
     markers: list = []
     length_s: float | None = None
 
@@ -141,14 +157,23 @@ class Source:
         """Live counters for the read-out (overflows, CRC errors, state)."""
         return {}
 
-    @staticmethod
-    def check_unknown(options: dict[str, Any], known) -> None:
-        """Refuse keys a driver does not know (one validation path, as pyserial does)."""
-        for key in options:
-            if key not in known:
-                raise SettingError(key, options[key],
-                                   "unknown option for this driver; known: "
-                                   + ", ".join(sorted(known)))
+    def clip_levels(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per channel (low, high): a sample at or beyond either is at full scale.
+
+        Default: +-``full_scale``; for an N-bit integer source the top code,
+        ``full_scale * (1 - 2**(1 - N))`` (int16 32767 reads 0.99997 FS).
+        """
+        fs = float(self.full_scale)
+        bits = self.resolution_bits
+        top = fs * (1.0 - 2.0 ** (1 - bits)) if bits else fs
+        return np.full(self.channels, -fs), np.full(self.channels, top)
+
+    @classmethod
+    def check_unknown(cls, options: dict[str, Any], known) -> None:
+        """Refuse keys the ``[source]`` table does not take, listing every key it
+        takes: the common ones (:data:`SOURCE_KEYS`) and this driver's."""
+        what = f'a [source] table with driver = "{cls.driver}"' if cls.driver else "[source]"
+        fields.check_keys(options, SOURCE_KEYS + tuple(sorted(known)), what)
 
 
 class Pacer:

@@ -83,8 +83,8 @@ class ReportFolder:
         return path
 
     def toml(self, name: str, doc: Mapping[str, Any]) -> Path:
-        from livefilt.tomlout import dumps
-        return self._write(name, dumps(doc).encode())
+        from livefilt.config import toml_text
+        return self._write(name, toml_text(doc).encode())
 
     def csv(self, name: str, header: Sequence[str], rows: Iterable[Sequence[Any]]) -> Path:
         buf = io.StringIO()

@@ -37,13 +37,15 @@ from __future__ import annotations
 import logging
 import math
 import re
-from dataclasses import dataclass, fields, replace
+from dataclasses import dataclass, fields as _dataclass_fields, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
 from scipy import optimize, signal
 
+from livefilt import fields
 from livefilt.errors import SettingError
+from livefilt.fields import MISSING as _MISSING, tidy as _tidy
 
 __all__ = [
     "StageSpec",
@@ -155,20 +157,17 @@ class StageSpec:
             raise SettingError("", table, "a stage must be a table such as "
                                '{type = "lowpass", cutoff_hz = 1000}')
         kind = table.get("type", _MISSING)
-        if kind not in STAGE_TYPES:
-            raise SettingError("type", kind, "must be one of: " + ", ".join(STAGE_TYPES))
+        fields.choice(kind, "type", STAGE_TYPES)
         _check_keys(table, kind)
         nyq = _nyquist(fs)
         get = table.get
         values: dict[str, Any] = {"type": kind}
-        values["gain_db"] = _number(get("gain_db", 0.0), "gain_db",
+        values["gain_db"] = fields.number(get("gain_db", 0.0), "gain_db",
                                     -_MAX_GAIN_DB, _MAX_GAIN_DB, "dB", inclusive=True)
         if kind in ("lowpass", "highpass", "bandpass", "bandstop"):
-            design = get("design", _DEFAULTS["design"])
-            if design not in DESIGNS:
-                raise SettingError("design", design, "must be one of: " + ", ".join(DESIGNS))
+            design = fields.choice(get("design", _DEFAULTS["design"]), "design", DESIGNS)
             values["design"] = design
-            values["order"] = _integer(get("order", _DEFAULTS["order"]), "order",
+            values["order"] = fields.integer(get("order", _DEFAULTS["order"]), "order",
                                        1, _MAX_ORDER)
             if "ripple_db" in table and design not in _RIPPLE_DESIGNS:
                 raise SettingError("ripple_db", table["ripple_db"],
@@ -179,10 +178,10 @@ class StageSpec:
                                    f"only for designs {' and '.join(_STOP_DESIGNS)} "
                                    f"(this stage is {design})")
             if design in _RIPPLE_DESIGNS:
-                values["ripple_db"] = _positive(get("ripple_db", _DEFAULTS["ripple_db"]),
+                values["ripple_db"] = fields.positive(get("ripple_db", _DEFAULTS["ripple_db"]),
                                                 "ripple_db", "dB")
             if design in _STOP_DESIGNS:
-                values["stop_db"] = _positive(get("stop_db", _DEFAULTS["stop_db"]),
+                values["stop_db"] = fields.positive(get("stop_db", _DEFAULTS["stop_db"]),
                                               "stop_db", "dB")
             if design == "elliptic" and values["stop_db"] <= values["ripple_db"]:
                 raise SettingError("stop_db", get("stop_db", _DEFAULTS["stop_db"]),
@@ -195,32 +194,30 @@ class StageSpec:
                 values["band_hz"] = _band(get("band_hz", _MISSING), nyq)
         elif kind == "notch":
             values["at_hz"] = _below_nyquist(get("at_hz", _MISSING), "at_hz", nyq)
-            values["harmonics"] = _integer(get("harmonics", _DEFAULTS["harmonics"]),
+            values["harmonics"] = fields.integer(get("harmonics", _DEFAULTS["harmonics"]),
                                            "harmonics", 1, None)
-            values["q"] = _positive(get("q", _DEFAULTS["q"]), "q", "(Q = f0 / -3 dB width)")
+            values["q"] = fields.positive(get("q", _DEFAULTS["q"]), "q", "(Q = f0 / -3 dB width)")
         else:
             values["r_ohm"] = _component(get("r_ohm", _MISSING), "r_ohm", "ohm")
             values["c_farad"] = _component(get("c_farad", _MISSING), "c_farad", "F")
-            values["sections"] = _integer(get("sections", _DEFAULTS["sections"]),
+            values["sections"] = fields.integer(get("sections", _DEFAULTS["sections"]),
                                           "sections", 1, _MAX_RC_SECTIONS)
-            buffered = get("buffered", _DEFAULTS["buffered"])
-            if not isinstance(buffered, bool):
-                raise SettingError("buffered", buffered, "must be true or false")
-            values["buffered"] = buffered
-            response = get("response", _DEFAULTS["response"])
-            if response not in ("lowpass", "highpass"):
-                raise SettingError("response", response, 'must be "lowpass" or "highpass"')
-            values["response"] = response
+            values["buffered"] = fields.boolean(get("buffered", _DEFAULTS["buffered"]), "buffered")
+            values["response"] = fields.choice(get("response", _DEFAULTS["response"]), "response",
+                                               ("lowpass", "highpass"))
         spec = cls(**values)
         stage_sos(spec, fs)  # the checks that need the design itself
         return spec
 
-    def to_mapping(self) -> dict[str, Any]:
-        """The minimal TOML table for this stage (defaults left out)."""
+    def to_mapping(self, full: bool = True) -> dict[str, Any]:
+        """The TOML table for this stage: every key that applies, defaults
+        included (so a later version with other defaults designs the same
+        stage), or with ``full=False`` the minimal table (defaults left out)."""
         out: dict[str, Any] = {}
-        for f in fields(self):
+        for f in _dataclass_fields(self):
             value = getattr(self, f.name)
-            if value is None or (f.name in _DEFAULTS and value == _DEFAULTS[f.name]):
+            if value is None or (not full and f.name in _DEFAULTS
+                                 and value == _DEFAULTS[f.name]):
                 continue
             out[f.name] = list(value) if isinstance(value, tuple) else value
         return out
@@ -454,57 +451,17 @@ def describe(spec: StageSpec, fs: float | None = None) -> str:
     return text
 
 
-def parse_si(text_or_number: Any, field: str) -> float:
-    """A component value as a float: a number, or a string with an SI prefix.
-
-    Accepted strings: ``"10k"``, ``"4.7k"``, ``"1M"``, ``"100n"``, ``"2.2u"``
-    (also ``"µ"``), ``"470p"``, ``"1e-9"``, the IEC 60062 letter-as-decimal-point
-    form (``"4k7"``, ``"2n2"``, ``"4R7"``), optionally followed by the unit
-    (``"F"``, ``"Ω"``, ``"ohm"``).  ``m`` is milli, ``M`` mega.
-
-    Raises
-    ------
-    SettingError
-        Naming ``field`` and the accepted form.
-    """
-    if isinstance(text_or_number, bool):
-        raise SettingError(field, text_or_number, _SI_FORM)
-    if isinstance(text_or_number, (int, float)):
-        return float(text_or_number)
-    if isinstance(text_or_number, str):
-        m = _SI_PLAIN.match(text_or_number)
-        if m is not None:
-            return float(m["num"]) * _SI_PREFIX[m["prefix"]]
-        m = _SI_RKM.match(text_or_number)
-        if m is not None:
-            return float(f"{m['int']}.{m['frac']}") * _SI_PREFIX[m["prefix"]]
-    raise SettingError(field, text_or_number, _SI_FORM)
+#: Component values with SI prefixes (``"4k7"``, ``"22n"``), parsed exactly.
+parse_si = fields.si_value
 
 
 # --------------------------------------------------------------------------- private
-
-class _Missing:
-    def __repr__(self) -> str:
-        return "(not set)"
-
-
-_MISSING = _Missing()
 
 _PRETTY = {"lowpass": "low-pass", "highpass": "high-pass",
            "bandpass": "band-pass", "bandstop": "band-stop"}
 _DESIGN_NAMES = {"butterworth": "Butterworth", "bessel": "Bessel",
                  "chebyshev1": "Chebyshev I", "chebyshev2": "Chebyshev II",
                  "elliptic": "Elliptic"}
-_SI_PREFIX = {"": 1.0, "R": 1.0, "p": 1e-12, "n": 1e-9, "u": 1e-6, "µ": 1e-6,
-              "μ": 1e-6, "m": 1e-3, "k": 1e3, "K": 1e3, "M": 1e6, "G": 1e9}
-_UNIT = r"(?:F|Ω|[oO]hms?)?"
-_SI_PLAIN = re.compile(
-    r"^\s*(?P<num>[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*"
-    r"(?P<prefix>[pnuµμmkKMG]?)" + _UNIT + r"\s*$")
-_SI_RKM = re.compile(r"^\s*(?P<int>\d+)(?P<prefix>[pnuµμmkKMGR])(?P<frac>\d+)" + _UNIT + r"\s*$")
-_SI_FORM = ('must be a number > 0 or a string with an SI prefix, e.g. "10k", "4.7k", '
-            '"4k7", "1M", "100n", "2.2u", "470p"')
-
 
 def _nyquist(fs: float) -> float:
     if isinstance(fs, bool) or not isinstance(fs, (int, float, np.floating, np.integer)) \
@@ -513,66 +470,15 @@ def _nyquist(fs: float) -> float:
     return fs / 2.0
 
 
-def _tidy(v: Any) -> Any:
-    """Show 30000.0 as 30000 in messages."""
-    if isinstance(v, float) and v.is_integer() and abs(v) < 1e15:
-        return int(v)
-    return v
-
-
 def _check_keys(table: Mapping[str, Any], kind: str) -> None:
-    own = set(_KEYS[kind]) | set(_COMMON_KEYS)
-    takes = ", ".join(_COMMON_KEYS + _KEYS[kind])
-    for key in table:
-        if key in own:
-            continue
-        owners = [t for t in STAGE_TYPES if key in _KEYS[t]]
-        if owners:
-            raise SettingError(key, table[key],
-                               f"not a key of a {kind} stage (it belongs to "
-                               f"{', '.join(owners)}); a {kind} stage takes: {takes}")
-        raise SettingError(key, table[key], f"unknown key; a {kind} stage takes: {takes}")
-
-
-def _real(value: Any, field: str, allowed: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) \
-            or not math.isfinite(value):
-        raise SettingError(field, value, allowed)
-    return float(value)
-
-
-def _number(value: Any, field: str, lo: float, hi: float, unit: str,
-            inclusive: bool = False) -> float:
-    allowed = (f"must be a number from {_tidy(lo)} to {_tidy(hi)} {unit}" if inclusive
-               else f"must be a number between {_tidy(lo)} and {_tidy(hi)} {unit}, exclusive")
-    v = _real(value, field, allowed)
-    if (inclusive and not lo <= v <= hi) or (not inclusive and not lo < v < hi):
-        raise SettingError(field, value, allowed)
-    return v
-
-
-def _positive(value: Any, field: str, unit: str) -> float:
-    allowed = f"must be a number > 0 {unit}".rstrip()
-    v = _real(value, field, allowed)
-    if v <= 0:
-        raise SettingError(field, value, allowed)
-    return v
-
-
-def _integer(value: Any, field: str, lo: int, hi: int | None) -> int:
-    allowed = (f"must be a whole number from {lo} to {hi}" if hi is not None
-               else f"must be a whole number >= {lo}")
-    if isinstance(value, bool) or not isinstance(value, int) or value < lo \
-            or (hi is not None and value > hi):
-        raise SettingError(field, value, allowed)
-    return value
+    belongs = {k: [t for t in STAGE_TYPES if k in _KEYS[t]] for t in STAGE_TYPES for k in _KEYS[t]}
+    fields.check_keys(table, _COMMON_KEYS + _KEYS[kind], f"a {kind} stage", belongs)
 
 
 def _below_nyquist(value: Any, field: str, nyq: float) -> float:
     allowed = f"must be between 0 and Nyquist ({nyq:.10g} Hz), exclusive"
-    if value is _MISSING:
-        raise SettingError(field, value, "required; " + allowed)
-    v = _real(value, field, allowed)
+    fields.required(value, field, allowed)
+    v = fields.real(value, field, allowed)
     if not 0.0 < v < nyq:
         raise SettingError(field, _tidy(value), allowed)
     return v
@@ -580,8 +486,7 @@ def _below_nyquist(value: Any, field: str, nyq: float) -> float:
 
 def _band(value: Any, nyq: float) -> tuple[float, float]:
     form = f"[low, high] in Hz with 0 < low < high < Nyquist ({nyq:.10g} Hz)"
-    if value is _MISSING:
-        raise SettingError("band_hz", value, "required; " + form)
+    fields.required(value, "band_hz", form)
     if not isinstance(value, (list, tuple)) or len(value) != 2:
         raise SettingError("band_hz", value, "must be two numbers " + form)
     lo, hi = (_below_nyquist(v, f"band_hz[{i}]", nyq) for i, v in enumerate(value))
@@ -591,9 +496,7 @@ def _band(value: Any, nyq: float) -> tuple[float, float]:
 
 
 def _component(value: Any, field: str, unit: str) -> float:
-    if value is _MISSING:
-        raise SettingError(field, value, "required; " + _SI_FORM)
-    v = parse_si(value, field)
+    v = fields.si_value(fields.required(value, field, fields.SI_FORM), field)
     if not (math.isfinite(v) and v > 0):
         raise SettingError(field, value, f"must be > 0 {unit}")
     return v

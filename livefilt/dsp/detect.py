@@ -82,6 +82,7 @@ from scipy.signal import lfilter
 from scipy.special import gamma, gammaincinv
 
 from livefilt.dsp import kernels
+from livefilt import fields
 from livefilt.dsp.track import Tracker
 from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
 from livefilt.errors import SettingError
@@ -191,7 +192,7 @@ class ReferenceSpec:
             For an unknown key or a value out of range.
         """
         _check_keys(table, ("frequency_hz", "phase_deg", "channel", "waveform", "lock_range",
-                            "track", "track_bandwidth_hz"))
+                            "track", "track_bandwidth_hz"), "a [reference] table")
         freq = table.get("frequency_hz")
         if freq is not None:
             freq = _number(table, "frequency_hz")
@@ -210,8 +211,7 @@ class ReferenceSpec:
             raise SettingError("frequency_hz", None,
                                "a lock-in needs frequency_hz or channel (a measured reference)")
         waveform = table.get("waveform", "square")
-        if waveform not in _WAVEFORMS:
-            raise SettingError("waveform", waveform, 'must be "square" or "sine"')
+        fields.choice(waveform, "waveform", _WAVEFORMS)
         lock_range = _number(table, "lock_range", 0.2)
         if not 0 < lock_range < 1:
             raise SettingError("lock_range", table["lock_range"],
@@ -291,7 +291,7 @@ class DetectorSpec:
         """
         kind = table.get("type", "lockin")
         if kind == "boxcar":
-            _check_keys(table, ("type", "settling_s", "noise_window_s"))
+            _check_keys(table, ("type", "settling_s", "noise_window_s"), "a boxcar detector")
             if "settling_s" not in table:
                 raise SettingError("settling_s", None,
                                    "is required for a boxcar detector (the lag budget, s)")
@@ -303,9 +303,9 @@ class DetectorSpec:
             if not window > 0:
                 raise SettingError("noise_window_s", table["noise_window_s"], "must be above 0 s")
             return cls(kind, lag, 24, window)
-        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"))
-        if kind not in ("lockin", "rms"):
-            raise SettingError("type", kind, 'must be "lockin", "rms" or "boxcar"')
+        _check_keys(table, ("type", "time_constant_s", "slope_db_oct", "noise_window_s"),
+                    "a detector")
+        fields.choice(kind, "type", ("lockin", "rms", "boxcar"))
         if "time_constant_s" not in table:
             raise SettingError("time_constant_s", None, "is required (seconds, > 0)")
         tau = _number(table, "time_constant_s")
@@ -1129,24 +1129,16 @@ class _RefTracker:
                 self._set_locked(False, why)
 
 
-_MISSING = object()
+def _check_keys(table: dict, known: tuple, what: str) -> None:
+    fields.check_keys(table, known, what)
 
 
-def _check_keys(table: dict, known: tuple) -> None:
-    for key in table:
-        if key not in known:
-            raise SettingError(key, table[key], "unknown key; known: " + ", ".join(known))
-
-
-def _number(table: dict, key: str, default=_MISSING) -> float:
+def _number(table: dict, key: str, default=fields.MISSING) -> float:
     """``table[key]`` as a finite float (booleans refused)."""
     value = table.get(key, default)
-    if value is _MISSING:
+    if value is fields.MISSING:
         raise SettingError(key, None, "is required (a number)")
-    if isinstance(value, bool) or not isinstance(value, (int, float)) \
-            or not math.isfinite(value):
-        raise SettingError(key, value, "must be a finite number")
-    return float(value)
+    return fields.real(value, key)
 
 
 def _section_coefficients(fs: float, tau: float) -> tuple[np.ndarray, np.ndarray]:

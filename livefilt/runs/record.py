@@ -42,10 +42,11 @@ import numpy as np
 from livefilt import __version__
 from livefilt.dsp.detect import LOCK_REASONS
 from livefilt.errors import RecordingError
-from livefilt.tomlout import dumps
+from livefilt.config import toml_text
 from livefilt.runs.wavio import WavWriter, read_wav
 
-__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "new_run_folder", "make_marker"]
+__all__ = ["RunWriter", "Run", "read_run", "RESULT_COLUMNS", "FLAG_COLUMNS", "new_run_folder",
+           "make_marker"]
 
 RESULT_COLUMNS = ("time_s", "chain", "amplitude", "phase_deg", "in_phase", "quadrature",
                   "noise", "snr_db", "ref_hz", "locked", "sample_index",
@@ -68,6 +69,9 @@ def result_header(units: str) -> list[str]:
     text (empty while locked)."""
     u = "".join(ch for ch in str(units or "FS") if ch.isalnum()) or "FS"
     return [f"{c}_{u}" if c in AMPLITUDE_COLUMNS else c for c in RESULT_COLUMNS]
+#: Input flags per row: samples of the chain's input in the row's output
+#: interval that were non-finite (replaced) or at/beyond full scale.
+FLAG_COLUMNS = ("nonfinite", "clipped")
 
 
 def _utc_now() -> datetime:
@@ -77,6 +81,9 @@ def _utc_now() -> datetime:
 def new_run_folder(parent, label: str = "") -> Path:
     """A fresh folder ``parent/run-YYYYmmdd-HHMMSS[-label]`` (suffixed if taken)."""
     parent = Path(parent)
+    if parent.exists() and not parent.is_dir():
+        raise RecordingError(f"{parent}: is a file, not a folder; --out takes a folder "
+                             "(a new run folder is made inside it)")
     try:
         parent.mkdir(parents=True, exist_ok=True)
     except OSError as e:
@@ -86,7 +93,11 @@ def new_run_folder(parent, label: str = "") -> Path:
     while path.exists():
         k += 1
         path = parent / f"{stem}-{k}"
-    path.mkdir()
+    try:
+        path.mkdir()
+    except OSError as e:
+        raise RecordingError(f"{parent}: cannot make a run folder in it ({e.strerror}); "
+                             "choose a folder you can write with --out") from None
     return path
 
 
@@ -136,7 +147,7 @@ class RunWriter:
             raise RecordingError(f"{self.folder}: cannot write the run ({e.strerror})") from None
         self._csv = csv.writer(self._csv_file)
         self.units = str(source_info.get("units") or "FS")
-        self._csv.writerow(result_header(self.units))
+        self._csv.writerow(result_header(self.units) + list(FLAG_COLUMNS))
         self.rate_hz = rate_hz
         self.config = tomllib.loads(config_toml)
         self.source_info = dict(source_info)
@@ -144,6 +155,9 @@ class RunWriter:
         self.stopped: datetime | None = None
         self.markers: list[dict] = []
         self.counts: dict[str, Any] = {}
+        self.source_state: dict[str, Any] = {}
+        #: Called at each flush for (counts, source state), so run.toml stays current.
+        self.refresh = None
         self.rows = 0
         self.failed: str | None = None
         self.dropped_frames = 0
@@ -169,12 +183,13 @@ class RunWriter:
         if not self._put(("block", a), a.nbytes):
             self.dropped_frames += a.shape[0]
 
-    def write_rows(self, chain: str, rows: np.ndarray) -> None:
-        """Queue detector rows (structured array with READING_DTYPE fields)."""
+    def write_rows(self, chain: str, rows: np.ndarray, flags=None) -> None:
+        """Queue detector rows (structured array with READING_DTYPE fields) and
+        their input flags (``(nonfinite, clipped)`` counts per row, or None)."""
         if self.failed or not len(rows):
             return
         r = rows.copy()
-        if not self._put(("rows", chain, r), r.nbytes):
+        if not self._put(("rows", chain, r, flags), r.nbytes):
             self.dropped_rows += len(r)
 
     def add_marker(self, time_s: float, distance_m: float | None, note: str = "") -> dict:
@@ -202,12 +217,15 @@ class RunWriter:
         """Ask the recorder thread to push what it has to disk now."""
         self._put(("flush",), 0, force=True)
 
-    def close(self, counts: dict | None = None, timeout: float = 30.0) -> None:
+    def close(self, counts: dict | None = None, timeout: float = 30.0,
+              source_state: dict | None = None) -> None:
         """Finish writing what is queued, close the files and write the final
         run.toml with ``counts``.  Returns within ``timeout`` seconds whatever
         the disk does (a recorder still stuck then is left as a daemon)."""
         if counts:
             self.counts.update(counts)
+        if source_state:
+            self.source_state.update(source_state)
         with self._cv:
             if not self._closing:
                 self._items.append(("close",))
@@ -254,7 +272,7 @@ class RunWriter:
                 if kind == "block":
                     self._write_block(item[1])
                 elif kind == "rows":
-                    self._write_rows(item[1], item[2])
+                    self._write_rows(item[1], item[2], item[3])
                 elif kind == "meta":
                     self._write_meta()
                 elif kind == "flush":
@@ -270,21 +288,30 @@ class RunWriter:
         if self._since_flush >= self.rate_hz * self.FLUSH_EVERY_S:
             self._flush()
 
-    def _write_rows(self, chain: str, rows: np.ndarray) -> None:
+    def _write_rows(self, chain: str, rows: np.ndarray, flags) -> None:
         w, fs = self._csv.writerow, self.rate_hz
-        for r in rows:
+        nonfinite, clipped = flags if flags is not None else ((0,) * len(rows),) * 2
+        for r, nf, cl in zip(rows, nonfinite, clipped):
             w((f"{r['index'] / fs:.6f}", chain, _g(r["amplitude"]), _g(r["phase_deg"]),
                _g(r["in_phase"]), _g(r["quadrature"]), _g(r["noise"]), _g(r["snr_db"]),
                _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"]),
                _g(100.0 * r["noise_u"]), _g(r["snr_u_db"]), _g(r["vector_amplitude"]),
                _g(r["amplitude_corrected"]), int(bool(r["biased"])), _g(r["offset_hz"]),
-               _g(r["offset_u_hz"]), LOCK_REASONS.get(int(r["lock_reason"]), "")))
+               _g(r["offset_u_hz"]), LOCK_REASONS.get(int(r["lock_reason"]), ""), int(nf), int(cl)))
         self.rows += len(rows)
 
     def _flush(self) -> None:
+        """Samples and rows to disk, then run.toml with the frame count the WAV
+        header now holds (and the current counts), so a killed run's record
+        matches its file."""
         self._wav.flush()
         self._csv_file.flush()
         self._since_flush = 0
+        if self.refresh is not None:
+            counts, state = self.refresh()
+            self.counts.update(counts)
+            self.source_state.update(state)
+        self._write_meta()
 
     def _stop_on(self, e: BaseException, name: str = "") -> None:
         """A write failed: one line, files closed and readable, the rest discarded."""
@@ -343,9 +370,10 @@ class RunWriter:
             run["duration_s"] = round(self._wav.frames / self.rate_hz, 6)
         doc = {"run": run, "units": {self.units: UNIT_TEXT.get(self.units, self.units)},
                "source_info": _plain(self.source_info),
+               "source_status": _plain(self.source_state),
                "counts": _plain(self.counts), "config": self.config,
                "markers": list(self.markers)}
-        text = dumps(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
+        text = toml_text(doc, header="livefilt run folder: raw.wav holds every acquired sample, "
                                  "results.csv the detector rows.")
         tmp = self.folder / "run.toml.tmp"
         try:
@@ -442,11 +470,11 @@ def read_run(folder, raw: bool = True) -> Run:
 
 def _read_results(path: Path) -> dict[str, np.ndarray]:
     if not path.is_file():
-        return {c: np.zeros(0) for c in RESULT_COLUMNS}
+        return {c: np.zeros(0) for c in RESULT_COLUMNS + FLAG_COLUMNS}
     text = path.read_text(encoding="utf-8")
     rows = list(csv.reader(io.StringIO(text)))
     if not rows:
-        return {c: np.zeros(0) for c in RESULT_COLUMNS}
+        return {c: np.zeros(0) for c in RESULT_COLUMNS + FLAG_COLUMNS}
     header, body = rows[0], [r for r in rows[1:] if len(r) == len(rows[0])]
     out = {}
     for j, name in enumerate(header):

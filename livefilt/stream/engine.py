@@ -28,11 +28,12 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from livefilt.stream.chain import Chain
-from livefilt.config import ChainSettings, Settings, parse_chain
+from livefilt.config import ChainSettings, Settings, parse_chain, toml_text
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError, SourceError
 from livefilt.threads import Worker
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
+from livefilt.acquire.guard import InputGuard, resolution_limit
 from livefilt.acquire.ring import Ring
 from livefilt.dsp.sections import FilterBank
 from livefilt.acquire.source import Source, load_driver
@@ -94,8 +95,10 @@ class Engine:
         src = self.source
         self.rate_hz = float(src.rate_hz)
         if abs(self.rate_hz - settings.source.rate_hz) > 1e-9:
-            log.info("source runs at %g Hz (config said %g Hz): settings re-checked at the source's rate",
-                     self.rate_hz, settings.source.rate_hz)
+            log.warning("using %g Hz, the rate the %s source runs at (the config says %g Hz, "
+                        "but a %s sets its own rate); settings re-checked at %g Hz",
+                        self.rate_hz, src.driver, settings.source.rate_hz,
+                        "recording" if src.driver == "file" else "device", self.rate_hz)
         self.settings = settings.at_rate(self.rate_hz, channels=src.channels)
         self.reference = self.settings.reference
         self._reference_changed = False
@@ -107,6 +110,11 @@ class Engine:
         self.batch = max(1, int(batch))
         self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))
         self.chains = [self._make_chain(c, i) for i, c in enumerate(self.settings.chains)]
+        low, high = src.clip_levels()
+        unwatched = [j for j in range(src.channels) if j not in {c.channel for c in self.chains}]
+        low[unwatched], high[unwatched] = -np.inf, np.inf  # clipping counts on detector inputs
+        self.guard = InputGuard(low, high, self.output_every, src.channel_names)
+        self._bits_unchecked = bool(src.resolution_bits)  # warn once if the bits limit a result
         self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
         n_max = self.block * self.batch
         # every chain's filter in one compiled call per block (FilterBank)
@@ -120,6 +128,7 @@ class Engine:
                            [c.name for c in self.chains], tap_seconds)
         self.stats = EngineStats()
         self.latest: dict[str, np.void] = {}
+        self.resolution_note = ""
         self.recorder: RunWriter | None = None
         self.recording_error: str | None = None  # the last recording's failure, one line
         self.listeners: list = []  # callables (engine, start_index, raw, outputs, rows)
@@ -226,30 +235,48 @@ class Engine:
             info = self.source.info()
             info["reference"] = self.reference.to_mapping() if self.reference else None
             info["start_index"] = self.stats.index
-            self.recorder = RunWriter(path, self.current_settings().to_toml(), info,
+            doc = self.current_settings().to_mapping()
+            doc["source"] = {**doc["source"], **{k: v for k, v in self.source.resolved.items()
+                                                 if k not in doc["source"]}}
+            self.recorder = RunWriter(path, toml_text(doc), info,
                                       self.rate_hz, self.source.channels,
                                       wait_when_full=not self.source.realtime)
+            self.recorder.refresh = lambda: (self.counts(), self.source_state())
             return self.recorder
 
     def stop_recording(self) -> RunWriter | None:
         with self._rec_lock:
             rec, self.recorder = self.recorder, None
         if rec is not None:
-            rec.close(self.counts())
+            rec.close(self.counts(), source_state=self.source_state())
             if rec.failed:
                 self.recording_error = rec.failed
         return rec
 
+    #: Counts run.toml always holds (zero included), whatever the source.
+    SOURCE_COUNTS = {"crc_errors": "crc_errors", "sequence_gaps": "seq_gaps"}
+
     def counts(self) -> dict:
+        """Every count for run.toml and the read-out, zero included; the source's
+        other whole-number counters follow as ``source_<name>``."""
         st = self.stats
+        status = self.source.status()
         d = {"frames_processed": st.frames, "dropped_frames": st.dropped,
-             "ring_overruns": st.overruns, "device_events": st.device_events}
+             "ring_overruns": st.overruns, "device_events": st.device_events,
+             **self.guard.counts()}
         rec = self.recorder
         if rec is not None:
             d.update(recorder_dropped_frames=rec.dropped_frames, recorder_dropped_rows=rec.dropped_rows)
-        d.update({f"source_{k}": v for k, v in self.source.status().items()
-                  if isinstance(v, (int, float, str, bool))})
+        d.update({k: int(status.get(v) or 0) for k, v in self.SOURCE_COUNTS.items()})
+        used = set(self.SOURCE_COUNTS.values())
+        d.update({f"source_{k}": v for k, v in status.items()
+                  if k not in used and isinstance(v, int) and not isinstance(v, bool)})
         return d
+
+    def source_state(self) -> dict:
+        """The source's status values that are not counts (state, distance, position)."""
+        return {k: v for k, v in self.source.status().items()
+                if isinstance(v, (float, str, bool)) and v != ""}
 
     # -- running ---------------------------------------------------------
     def start(self, duration_s: float | None = None) -> None:
@@ -316,6 +343,32 @@ class Engine:
             finally:
                 self.finished.set()
 
+    def _check_resolution(self, rows_all) -> None:
+        """Say once when an integer input's resolution limits a chain's reading
+        (:func:`~livefilt.acquire.guard.resolution_limit`), at its first settled row."""
+        for c, rows in zip(self.chains, rows_all):
+            settled = rows[np.isfinite(rows["noise"])] if len(rows) else rows
+            if not len(settled):
+                continue
+            r = settled[-1]
+            why = resolution_limit(self.source.resolution_bits, self.source.full_scale,
+                                   self.source.units, float(r["amplitude"]))
+            self._bits_unchecked = False
+            if why:
+                log.warning("chain %s: %s", c.name, why)
+                self.resolution_note = f"chain {c.name}: {why}"
+                return
+
+    def _write_rows(self, rec, rows_all) -> None:
+        """Rows in time order, chains interleaved (every chain's rows fall on the
+        same sample indices), with their input flags."""
+        flags = [self.guard.row_flags(c.channel, rows["index"])
+                 for c, rows in zip(self.chains, rows_all)]
+        for i in range(max((len(r) for r in rows_all), default=0)):
+            for c, rows, (nf, cl) in zip(self.chains, rows_all, flags):
+                if i < len(rows):
+                    rec.write_rows(c.name, rows[i:i + 1], (nf[i:i + 1], cl[i:i + 1]))
+
     def step(self, timeout: float = 0.2) -> bool:
         """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
         want = self.block * self.batch
@@ -348,10 +401,11 @@ class Engine:
                 c.note_gap(blk.dropped)
             for kind, lost, note in blk.gaps:
                 log.warning("%s: %d frames lost at sample %d (%s)", kind, lost, blk.start_index, note)
-        n, data, start = blk.frames, blk.data, blk.start_index
+        n, raw, start = blk.frames, blk.data, blk.start_index
         if self._stop_at is not None and start + n > self._stop_at:
             n = max(0, self._stop_at - start)
-            data = data[:n]
+            raw = raw[:n]
+        data = self.guard.check(raw, start)  # NaN/Inf held out of every filter; clipping counted
         nch = data.shape[1]
         if not self._settled and n:
             # Start as an instrument that has been on for a while: each chain's
@@ -370,6 +424,8 @@ class Engine:
                 self.latest[c.name] = rows[-1]
         st.frames += n
         st.index = start + n
+        if self._bits_unchecked:
+            self._check_resolution(rows_all)
         if self.tap is not None:
             s = self._streams[:, :n]
             s[:nch] = data.T
@@ -381,10 +437,8 @@ class Engine:
         if rec is not None:
             with self._rec_lock:
                 if self.recorder is not None:
-                    rec.write_block(data)
-                    for c, rows in zip(self.chains, rows_all):
-                        if len(rows):
-                            rec.write_rows(c.name, rows)
+                    rec.write_block(raw)  # as acquired
+                    self._write_rows(rec, rows_all)
         while self._schedule and self._schedule[0]["time_s"] * self.rate_hz <= st.index:
             m = self._schedule.pop(0)
             self.add_marker(m.get("distance_m"), m.get("note", ""), m["time_s"])

@@ -1,4 +1,5 @@
-"""Status line: driver, device, rate, block, losses (red when non-zero), load, display fps."""
+"""Status line: driver, device, rate, block, losses and bad input samples (red when
+non-zero), load, display fps."""
 
 from __future__ import annotations
 
@@ -19,15 +20,17 @@ class StatusLine(QtWidgets.QStatusBar):
         self.source = QtWidgets.QLabel(f"{src.driver}: {src.device}")
         self.rate = QtWidgets.QLabel(f"{engine.rate_hz:g} Hz, blocks of {engine.block} samples")
         self.losses = QtWidgets.QLabel()
+        self.input = QtWidgets.QLabel()
         self.load = QtWidgets.QLabel()
         self.fps = QtWidgets.QLabel()
         self.note = QtWidgets.QLabel()
         # fixed sizes: a changing text then repaints its label alone, not the window's layout
         for w, sample in ((self.losses, "overruns 99999, dropped 9999999999 samples"),
+                          (self.input, "non-finite 9999999999, clipped 9999999999 samples"),
                           (self.load, "processing 100.0 % of real time"),
                           (self.fps, "display 999 frames/s")):
             fix_size(w, sample)
-        for w in (self.source, self.rate, self.losses, self.load, self.fps):
+        for w in (self.source, self.rate, self.losses, self.input, self.load, self.fps):
             self.addWidget(w)
         self.addPermanentWidget(self.note)
 
@@ -37,6 +40,12 @@ class StatusLine(QtWidgets.QStatusBar):
         bad = st.overruns or st.dropped
         self.losses.setText(f"overruns {st.overruns}, dropped {st.dropped} samples")
         self.losses.setStyleSheet("color: #b23a30; font-weight: bold;" if bad else "")
+        g = e.guard.counts()
+        self.input.setText(f"non-finite {g['nonfinite_samples']}, "
+                           f"clipped {g['clipped_samples']} samples")
+        self.input.setStyleSheet("color: #b23a30; font-weight: bold;" if any(g.values()) else "")
+        self.input.setToolTip("input samples that were NaN or Inf (replaced by the last finite "
+                              "value) or at or beyond full scale (clipping)")
         self.load.setText(f"processing {100 * st.load(e.rate_hz):.1f} % of real time")
         self.fps.setText(f"display {fps:.0f} frames/s")
         if e.error is not None:

@@ -23,7 +23,7 @@ from livefilt.drivers.soundcard import SoundCardSource
 from livefilt.errors import SettingError, SourceError
 from livefilt.acquire.ring import Block, Ring
 from livefilt.acquire.source import load_driver
-from livefilt.tomlout import dumps
+from livefilt.config import toml_text as dumps
 
 from tests.system import require
 
@@ -138,7 +138,8 @@ def test_registered_and_every_option_documented():
 
 
 @pytest.mark.parametrize("options, message", [
-    ({"chanels": [0]}, r"^chanels = \[0\]: unknown option for this driver; known: channels, device"),
+    ({"chanels": [0]}, r'^chanels = \[0\]: unknown key; a \[source\] table with driver = "soundcard" takes: '
+                      r"driver, rate_hz, block, channels, device"),
     ({"channels": [0, 0]}, r"^channels = \[0, 0\]: must not repeat a channel$"),
     ({"channels": "left"}, r"^channels = 'left': must be a list of input channel numbers, 0-based"),
     ({"channels": [-1]}, r"^channels = \[-1\]: must be a list of input channel numbers"),
@@ -159,7 +160,7 @@ def test_registered_and_every_option_documented():
     ({"drive": {"frequency_hz": 1000, "amplitude": 0.5, "waveform": "triangle"}},
      r'^drive.waveform = \'triangle\': must be "square" or "sine"$'),
     ({"drive": {"frequency_hz": 1000, "amplitude": 0.5, "shape": "square"}},
-     r"^drive.shape = 'square': unknown option for this driver; known: amplitude"),
+     r"^drive.shape = 'square': unknown key; a drive table takes: output_channel, waveform"),
     ({"drive": {"frequency_hz": 1000, "amplitude": 0.5, "output_channel": 1.5}},
      r"^drive.output_channel = 1.5: must be a channel number, 0-based"),
 ])

@@ -314,9 +314,11 @@ def test_round_trip(table):
     assert "type" in s.to_mapping()
 
 
-def test_to_mapping_is_minimal():
-    assert spec(type="lowpass", cutoff_hz=1000, design="butterworth", order=2).to_mapping() == \
-        {"type": "lowpass", "cutoff_hz": 1000.0}
+def test_to_mapping_is_fully_resolved_or_minimal():
+    s = spec(type="highpass", cutoff_hz=300)
+    assert s.to_mapping() == {"type": "highpass", "design": "butterworth", "order": 2,
+                              "cutoff_hz": 300.0, "gain_db": 0.0}
+    assert s.to_mapping(full=False) == {"type": "highpass", "cutoff_hz": 300.0}
 
 
 def test_describe():
