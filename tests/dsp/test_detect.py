@@ -372,7 +372,7 @@ def test_reference_setting_errors(table, field, match):
 @pytest.mark.parametrize("table,field,match", [
     ({"time_constant_s": 0.1, "order": 2}, "order", "unknown key; a detector takes: type"),
     # (the allowed list grew by "boxcar", issue 13 section 5)
-    ({"type": "peak", "time_constant_s": 0.1}, "type", '"lockin", "rms" or "boxcar"'),
+    ({"type": "peak", "time_constant_s": 0.1}, "type", 'must be one of: lockin, rms, boxcar'),
     ({"type": "boxcar"}, "settling_s", "is required for a boxcar"),
     ({"type": "boxcar", "settling_s": 0.1, "time_constant_s": 0.1}, "time_constant_s",
      "unknown key; a boxcar detector takes: type, settling_s"),
