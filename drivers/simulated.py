@@ -180,9 +180,14 @@ class Scene:
         common practice).  The signal's own shot noise is left out (under
         1e-4 of the sunlight's current here)."""
         i_mean = self.i_sun * cloud + self.i_lamp + self.i_pwm * self.pwm_duty
-        q = 2 * self.adc_fs_v / 2 ** self.adc_bits
         e_v = self.noise_density_v(i_mean)
-        return float(np.sqrt(e_v ** 2 + q * q / 12 / (self.fs / 2)) / self.adc_fs_v)
+        return float(np.hypot(e_v, self.quantisation_density_v()) / self.adc_fs_v)
+
+    def quantisation_density_v(self) -> float:
+        """The ADC's quantisation noise q^2/12 spread over 0..fs/2, V/sqrt(Hz)
+        (IEEE Std 1241, uniform quantisation; common practice)."""
+        q = 2 * self.adc_fs_v / 2 ** self.adc_bits
+        return float(q / np.sqrt(12 * self.fs / 2))
 
     def true_range_m(self, snr_db: float, enbw_hz: float, cloud: float = 1.0) -> float:
         """Distance at which the lock-in's SNR falls to ``snr_db``: the signal's
@@ -260,6 +265,8 @@ class SimulatedSource(Source):
         self._stop = threading.Event()
         self._index = 0  # next frame index handed to the ring (producer thread)
         self._block = 256  # paced hand-over size, a divisor of CHUNK
+        self._noise_power = 0.0  # sum over generated chunks of the white density^2 (V^2/Hz)
+        self._noise_chunks = 0
 
     @classmethod
     def from_settings(cls, options, rate_hz, block):
@@ -411,6 +418,8 @@ class SimulatedSource(Source):
         h1, h3, h5 = sc.hum_v
         v += sn * (h1 + h3 * (3 - 4 * s2) + h5 * (5 - 20 * s2 + 16 * s2 * s2))
         density = sc.noise_density_v(float(i_total.mean()))
+        self._noise_power += density * density
+        self._noise_chunks += 1
         rng = np.random.default_rng([self._seed, start // CHUNK])
         v += rng.standard_normal(n) * (density * np.sqrt(fs / 2))
         q = 2 * sc.adc_fs_v / 2 ** sc.adc_bits
@@ -419,6 +428,18 @@ class SimulatedSource(Source):
         out[:, 0] = code * (q / sc.adc_fs_v)
         out[:, 1] = led
         return out
+
+    def expected_noise_fs_per_rthz(self) -> float | None:
+        """The white-noise density this bench put into the chunks made so far,
+        full-scale units per root hertz: the analog noise (rows 7a, 7b and the
+        amplifier) in quadrature with the ADC's quantisation noise, q^2/12
+        spread over 0 to fs/2 (IEEE Std 1241).  What ``livefilt check``
+        should measure as the floor away from lines."""
+        if not self._noise_chunks:
+            return None
+        sc = self.scene
+        quant = sc.quantisation_density_v()
+        return float(np.sqrt(self._noise_power / self._noise_chunks + quant * quant)) / sc.adc_fs_v
 
     def distance_now(self) -> float:
         return float(self.scene.distance(self._index / self.rate_hz))

@@ -304,7 +304,9 @@ def build_parser() -> argparse.ArgumentParser:
     sv = sub.add_parser("survey", help="ambient recording -> quiet modulation frequencies")
     sv.add_argument("recording", metavar="RECORDING", help="WAV file or run folder, light source off")
     sv.add_argument("--config", metavar="FILE", help="settings with the front end and digitizer")
-    sv.add_argument("--out", metavar="DIR", help="report folder")
+    sv.add_argument("--drift-pct", type=float, metavar="PCT",
+                    help="expected drift of the modulation frequency, %% (default 0.1)")
+    sv.add_argument("--out", metavar="DIR", help="report folder (default: RECORDING-survey beside it)")
     sv.set_defaults(func=_analysis("survey"))
     ck = sub.add_parser("check", help="is this digitizer good enough, and is the stream whole?")
     ck.add_argument("--config", metavar="FILE", help="TOML settings naming the source to check")

@@ -3,13 +3,20 @@
  * unaltered, to a file descriptor (a pipe or a pseudo-terminal master).
  *
  *   simhost FIRMWARE.elf [--seconds S] [--fd N] [--sine-hz F]
- *                        [--sine-mv A] [--offset-mv O]
+ *                        [--sine-mv A] [--offset-mv O] [--pace-ppm P]
  *
  * ADC0 sees offset + A sin(2 pi F t) millivolts, t being simulated time at the
  * start of each conversion.  Supply and reference are 5000 mV.  The bytes are
  * written with blocking writes, so a slow reader slows the simulation instead
  * of losing data.  libsimavr prints its load message on stdout, so data goes to
  * --fd (default 3), never stdout.  A summary line goes to stderr at the end.
+ *
+ * --pace-ppm P runs the simulation in real time with the board's crystal P ppm
+ * fast (P may be 0 or negative): simulated second s is held back until host
+ * monotonic time t0 + s / (1 + P 1e-6), checked every simulated millisecond;
+ * when a full pipe held the simulation up, the schedule moves on rather than
+ * catching up (a board never sends faster than its crystal).
+ * Without it the simulation runs as fast as it can.
  *
  * Why not the simavr command-line runner: its UART console turns the byte
  * stream into text lines (the UART "stdio" flag), which mangles binary frames.
@@ -40,6 +47,8 @@ static unsigned long long out_total;
 static int out_broken;
 
 static double sine_hz = 123.0, sine_mv = 1000.0, offset_mv = 2500.0;
+static int pace = 0;
+static double pace_ppm = 0.0;
 static avr_irq_t *adc0_irq;
 
 static void flush_out(void)
@@ -96,7 +105,7 @@ static double now(void)
 static void usage(void)
 {
     fprintf(stderr, "usage: simhost FIRMWARE.elf [--seconds S] [--fd N] [--sine-hz F] "
-                    "[--sine-mv A] [--offset-mv O]\n");
+                    "[--sine-mv A] [--offset-mv O] [--pace-ppm P]\n");
     exit(2);
 }
 
@@ -123,6 +132,10 @@ int main(int argc, char **argv)
             sine_mv = v;
         else if (!strcmp(a, "--offset-mv"))
             offset_mv = v;
+        else if (!strcmp(a, "--pace-ppm")) {
+            pace = 1;
+            pace_ppm = v;
+        }
         else
             usage();
     }
@@ -158,12 +171,25 @@ int main(int argc, char **argv)
                             adc_trigger, avr);
 
     avr_cycle_count_t end = (avr_cycle_count_t)(seconds * F_CPU);
+    avr_cycle_count_t next_check = F_CPU / 1000;
     double t0 = now();
     int state = cpu_Running;
     while (avr->cycle < end && !out_broken) {
         state = avr_run(avr);
         if (state == cpu_Done || state == cpu_Crashed)
             break;
+        if (pace && avr->cycle >= next_check) {
+            next_check = avr->cycle + F_CPU / 1000;
+            flush_out(); /* bytes leave when the board would have sent them */
+            double due = t0 + ((double)avr->cycle / F_CPU) / (1.0 + pace_ppm * 1e-6);
+            double wait = due - now();
+            if (wait < -0.05)
+                t0 -= wait; /* held up (a full pipe): a board never sends faster than its clock */
+            else if (wait > 0) {
+                struct timespec ts = {(time_t)wait, (long)((wait - (double)(time_t)wait) * 1e9)};
+                nanosleep(&ts, NULL);
+            }
+        }
     }
     flush_out();
     double wall = now() - t0;

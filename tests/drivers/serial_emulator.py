@@ -66,12 +66,17 @@ class BoardEmulator:
         The frame at that position is written in two halves with this pause (s) between.
     describe_every : int
         A self-description goes out before every this many sample frames.
+    clock_ppm : float
+        The board's clock runs this many ppm fast: it sends at
+        ``rate_hz * (1 + clock_ppm / 1e6)`` while describing ``rate_hz``.
     """
 
     def __init__(self, frames: int = 0, start_seq: int = 0, link: str | None = None,
                  lines: list[bytes] | None = None, desc: wire.Description = BOARD,
-                 corrupt=(), drop=(), garbage=None, stall=None, describe_every: int = 100):
+                 corrupt=(), drop=(), garbage=None, stall=None, describe_every: int = 100,
+                 clock_ppm: float = 0.0):
         self.desc = desc
+        self.clock_ppm = float(clock_ppm)
         self.frames = frames
         self.start_seq = start_seq
         self.lines = lines
@@ -137,7 +142,7 @@ class BoardEmulator:
             pass  # the test closed the pty under us
 
     def _send_frames(self) -> None:
-        period = self.desc.block / self.desc.rate_hz
+        period = self.desc.block / (self.desc.rate_hz * (1 + self.clock_ppm * 1e-6))
         t0 = time.monotonic()
         for i in range(self.frames):
             if self._halt.is_set():
