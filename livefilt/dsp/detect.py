@@ -501,6 +501,13 @@ class _Detector:
             self._rows_buf = np.empty((self._channels, max(need, 2 * self._rows_buf.shape[1])))
         return self._rows_buf
 
+    def _scratch(self) -> np.ndarray:
+        """The compiled kernels' work array, (channels, one tile)."""
+        buf = self._work.get("scratch")
+        if buf is None:
+            buf = self._work["scratch"] = np.empty((self._channels, kernels.TILE))
+        return buf
+
     def _buffer(self, name: str, shape: tuple) -> np.ndarray:
         """A per-block work array, reused while the block size repeats."""
         buf = self._work.get(name)
@@ -605,10 +612,10 @@ class LockIn(_Detector):
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
             m = self._kern.mix_internal_rows(x, offset, fracs, self._cycles_per_sample, self.phase_rad, b0, b1, a1,
-                                             self.zi, first, self.output_every, rows)
+                                             self.zi, first, self.output_every, rows, self._scratch())
         else:
             m = self._kern.mix_cycles_rows(x, cycles, self.phase_rad, b0, b1, a1, self.zi,
-                                           first, self.output_every, rows)
+                                           first, self.output_every, rows, self._scratch())
         if m == 0:
             return _NO_ROWS
         if locked is not None:
@@ -877,7 +884,8 @@ class RmsDetector(_Detector):
         first = (-start_index) % self.output_every
         buf = self._row_buffer(n)
         b0, b1, a1 = self._coef
-        m = self._kern.square_rows(x, b0, b1, a1, self.zi, first, self.output_every, buf)
+        m = self._kern.square_rows(x, b0, b1, a1, self.zi, first, self.output_every, buf,
+                                   self._scratch())
         if m == 0:
             return _NO_ROWS
         return self._readout(start_index + first, buf[0, :m])

@@ -203,19 +203,29 @@ class FilterBank:
         return out
 
     def _pack(self) -> None:
-        """Gather the filters' arrays into the bank's and make theirs views."""
+        """Gather the filters' arrays into the bank's and make theirs views.
+
+        One float64 array holds every section (S, 6), then the state (S, 2),
+        then each filter's last input sample; ``plan`` is ``[filters,
+        bounds...]`` (:func:`~livefilt.dsp.kernels.sos_bank`).
+        """
         sizes = [f.sections for f in self.filters]
+        n_sec, nf = int(sum(sizes)), len(self.filters)
         self.bounds = np.concatenate(([0], np.cumsum(sizes))).astype(np.int64)
-        self.sos = np.concatenate([f.sos for f in self.filters])
-        self.zi = np.concatenate([f.zi for f in self.filters])
-        last = np.array([f._last for f in self.filters])
-        self.last = last
+        self.plan = np.concatenate(([nf], self.bounds)).astype(np.int64)
+        self.packed = np.empty(8 * n_sec + nf)
+        self.sos = self.packed[:6 * n_sec].reshape(n_sec, 6)
+        self.zi = self.packed[6 * n_sec:8 * n_sec].reshape(n_sec, 2)
+        self.last = self.packed[8 * n_sec:]
+        self.sos[...] = np.concatenate([f.sos for f in self.filters])
+        self.zi[...] = np.concatenate([f.zi for f in self.filters])
+        self.last[...] = [f._last for f in self.filters]
         # the per-block call binds the packed arrays once (less work per block)
         self._call = (None if self._kernel is None
-                      else functools.partial(self._kernel, self.sos, self.zi, self.bounds, self.last))
+                      else functools.partial(self._kernel, self.packed, self.plan))
         for i, (f, a, b) in enumerate(zip(self.filters, self.bounds[:-1], self.bounds[1:])):
             f.sos, f.zi = self.sos[a:b], self.zi[a:b]
-            f._last_box, f._last_at, f._bank = last, i, self
+            f._last_box, f._last_at, f._bank = self.last, i, self
 
 
 def _as_sos(sos: np.ndarray) -> np.ndarray:
