@@ -44,6 +44,8 @@ _TOP = ("source", "reference", "chains", "output", "frontend", "design")
 #: Mains frequencies the world uses (REFERENCES row 8; IEC 60196).
 MAINS_HZ = (50.0, 60.0)
 _CHAIN = ("name", "input", "stages", "detector")
+#: Most chains in one config (A and B on each of 16 inputs).
+MAX_CHAINS = 32
 _OUTPUT = ("interval_s",)
 
 
@@ -259,8 +261,8 @@ def parse_config(doc: Mapping, origin: str = "<settings>", channels: int = MAX_C
     raw_chains = doc.get("chains", [])
     if not isinstance(raw_chains, list) or not raw_chains:
         raise SettingError("chains", raw_chains, "needs at least one [[chains]] table")
-    if len(raw_chains) > 8:
-        raise SettingError("chains", f"{len(raw_chains)} chains", "at most 8 chains")
+    if len(raw_chains) > MAX_CHAINS:
+        raise SettingError("chains", f"{len(raw_chains)} chains", f"at most {MAX_CHAINS} chains")
     chains = tuple(parse_chain(t, fs, i, channels) for i, t in enumerate(raw_chains))
     names = [c.name for c in chains]
     for i, n in enumerate(names):

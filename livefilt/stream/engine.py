@@ -23,6 +23,7 @@ from __future__ import annotations
 import logging
 import threading
 import time
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -42,6 +43,10 @@ from livefilt.stream.taps import Tap
 __all__ = ["Engine", "EngineStats", "build_source"]
 
 log = logging.getLogger(__name__)
+
+
+#: Frames per step for a source not paced by a clock (Engine's ``batch``).
+FAST_STEP = 1 << 16
 
 
 def build_source(settings: Settings, **overrides) -> Source:
@@ -82,14 +87,25 @@ class Engine:
     settings : Settings
     source : Source, optional
         An unopened source; built from ``settings.source`` when omitted.
-    batch : int
-        Most blocks processed in one go when several are waiting.
+    batch : int, optional
+        Most blocks processed in one go when several are waiting.  Default:
+        32 for a source paced by a clock; for one that is not (a recording
+        or the simulator at pace "fast") enough blocks for :data:`FAST_STEP`
+        frames, and each step waits for them all: the work per step that
+        does not depend on its length (detector read-outs, the recorder's
+        rows) then costs little per sample.
     tap_seconds : float
         History held for display (0 for none: headless).
+    workers : int
+        Threads the chains are spread over (1: all on the engine thread).
+        The chains are split into that many consecutive groups, each with
+        its own filter bank; the compiled kernels release the GIL, so the
+        groups' filters and lock-ins run on several cores at once (the
+        read-outs in Python take turns).  The numbers do not change.
     """
 
     def __init__(self, settings: Settings, source: Source | None = None, *,
-                 batch: int = 32, tap_seconds: float = 0.0):
+                 batch: int | None = None, tap_seconds: float = 0.0, workers: int = 1):
         self.source = source if source is not None else build_source(settings)
         self.source.open()
         src = self.source
@@ -107,6 +123,10 @@ class Engine:
             hint = {k: v for k, v in src.reference_hint.items() if k in ("frequency_hz", "phase_deg")}
             self.reference = ReferenceSpec.from_mapping(hint, self.rate_hz, src.channels)
         self.block = self.settings.source.block
+        # a source not paced by a clock is read in long steps (see batch)
+        self._fast = not getattr(src, "realtime", True)
+        if batch is None:
+            batch = -(-FAST_STEP // self.block) if self._fast else 32
         self.batch = max(1, int(batch))
         self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))
         self.chains = [self._make_chain(c, i) for i, c in enumerate(self.settings.chains)]
@@ -117,10 +137,16 @@ class Engine:
         self._bits_unchecked = bool(src.resolution_bits)  # warn once if the bits limit a result
         self.ring = Ring(src.channels, max(int(self.rate_hz * 2), self.block * self.batch * 4))
         n_max = self.block * self.batch
-        # every chain's filter in one compiled call per block (FilterBank)
-        self._bank = FilterBank([c.filter for c in self.chains])
+        # every group's chains filtered in one compiled call per block
+        # (FilterBank); one group unless the chains are spread over workers
         self._inputs = np.array([c.channel for c in self.chains], dtype=np.int64)
         self._y = np.zeros((len(self.chains), n_max))
+        self.workers = max(1, min(int(workers), len(self.chains)))
+        cuts = np.linspace(0, len(self.chains), self.workers + 1).round().astype(int)
+        self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]]))
+                        for a, b in zip(cuts[:-1], cuts[1:])]
+        self._pool = (ThreadPoolExecutor(self.workers - 1, thread_name_prefix="livefilt-chains")
+                      if self.workers > 1 else None)
         self._streams = np.zeros((src.channels + len(self.chains), n_max), dtype=np.float32)
         self.tap = None
         if tap_seconds > 0:
@@ -314,6 +340,8 @@ class Engine:
         try:
             self.source.stop()
         finally:
+            if self._pool is not None:
+                self._pool.shutdown(wait=False)
             self.stop_recording()
 
     @property
@@ -361,13 +389,22 @@ class Engine:
 
     def _write_rows(self, rec, rows_all) -> None:
         """Rows in time order, chains interleaved (every chain's rows fall on the
-        same sample indices), with their input flags."""
+        same sample indices), with their input flags: one queue item per step."""
         flags = [self.guard.row_flags(c.channel, rows["index"])
                  for c, rows in zip(self.chains, rows_all)]
-        for i in range(max((len(r) for r in rows_all), default=0)):
-            for c, rows, (nf, cl) in zip(self.chains, rows_all, flags):
-                if i < len(rows):
-                    rec.write_rows(c.name, rows[i:i + 1], (nf[i:i + 1], cl[i:i + 1]))
+        rec.write_rowsets([c.name for c in self.chains], rows_all, flags)
+
+    def _run_group(self, group, data, start: int, n: int) -> list:
+        """Filter and detect chains ``a:b`` on one block; their rows."""
+        a, b, bank = group
+        y = self._y[a:b]
+        bank.process(data, self._inputs[a:b], y)
+        rows_all = []
+        for k in range(a, b):
+            c = self.chains[k]
+            ref = data[:, c.ref_channel] if c.ref_channel is not None else None
+            rows_all.append(c.detect(self._y[k, :n], start, ref))
+        return rows_all
 
     def step(self, timeout: float = 0.2) -> bool:
         """Process what is waiting (up to ``batch`` blocks); False if nothing came."""
@@ -377,7 +414,8 @@ class Engine:
             if left <= 0:
                 return False
             want = min(want, left)
-        blk = self.ring.read(want, min_frames=min(self.block, want), timeout=timeout)
+        blk = self.ring.read(want, min_frames=want if self._fast else min(self.block, want),
+                             timeout=timeout)
         if blk is None:
             return False
         t0 = time.perf_counter()
@@ -414,12 +452,14 @@ class Engine:
             for c in self.chains:
                 c.filter.settle(float(data[0, c.channel]))
             self._settled = True
-        self._bank.process(data, self._inputs, self._y)
-        rows_all = []
-        for k, c in enumerate(self.chains):
-            ref = data[:, c.ref_channel] if c.ref_channel is not None else None
-            rows = c.detect(self._y[k, :n], start, ref)
-            rows_all.append(rows)
+        if self._pool is None:
+            rows_all = self._run_group(self._groups[0], data, start, n)
+        else:  # the other groups on the pool, the first one here
+            later = [self._pool.submit(self._run_group, g, data, start, n) for g in self._groups[1:]]
+            rows_all = self._run_group(self._groups[0], data, start, n)
+            for f in later:
+                rows_all += f.result()
+        for c, rows in zip(self.chains, rows_all):
             if len(rows):
                 self.latest[c.name] = rows[-1]
         st.frames += n

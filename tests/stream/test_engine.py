@@ -35,6 +35,23 @@ def test_results_do_not_depend_on_block_size_or_batching():
     assert len(a["A"]) == 40
 
 
+def test_chains_spread_over_workers_give_the_same_rows_bit_for_bit():
+    # the groups' banks run the same kernels on the same samples: no number
+    # may change (and a long default step for a fast source changes none either)
+    d = demo_config().to_mapping()
+    d["source"].update(pace="fast")
+    d["chains"] = [dict(c, name=f"{c['name']}{i}") for i in range(3) for c in d["chains"]]
+    settings = parse_config(d)
+    one = collect(Engine(settings, batch=4), 1.0)
+    spread = Engine(settings, workers=3)
+    assert spread.workers == 3 and spread.batch * spread.block >= 1 << 16
+    three = collect(spread, 1.0)
+    assert one.keys() == three.keys()
+    for name in one:
+        for f in ("index", "in_phase", "quadrature", "amplitude", "noise"):
+            np.testing.assert_array_equal(one[name][f], three[name][f])
+
+
 def test_lockin_reads_the_scene_closed_form_at_a_fixed_distance():
     # Expected: Lambertian beam-filling reflection (REFERENCES row 9) of a 0..A
     # chopped LED, whose fundamental is 2A/pi peak = 0.4502 A rms (row 11,
