@@ -288,6 +288,8 @@ def build_parser() -> argparse.ArgumentParser:
     sp.add_argument("--json", metavar="FILE", help="also write the table as JSON")
     sp.add_argument("--quick", action="store_true", help="shorter measurements (noisier)")
     sp.add_argument("--window", action="store_true", help="also measure the live window (frame rate, CPU, latency)")
+    sp.add_argument("--channels", type=_channel_count, metavar="N",
+                    help="also measure N inputs at 192 kHz with chains A and B on each, on one and on every core")
     sp.set_defaults(func=cmd_speed)
 
     # -- before and after the bench: each lives in livefilt/analysis/ ----------------
@@ -335,6 +337,16 @@ def _seconds(text: str) -> float:
         raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
     if not v > 0:
         raise argparse.ArgumentTypeError(f"{text!r}: must be more than 0 seconds")
+    return v
+
+
+def _channel_count(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number of inputs") from None
+    if not 1 <= v <= 64:
+        raise argparse.ArgumentTypeError(f"{text!r}: must be 1 to 64 inputs")
     return v
 
 
