@@ -262,8 +262,8 @@ class MainWindow(QtWidgets.QMainWindow):
             self.verdict.refresh()
         if room == "signals" and self.frames % SPECTRUM_EVERY == 1:
             self.spectrum.refresh()
-        if self.frames % RANGE_EVERY == 0:
-            self.range_view.refresh()
+        if room == "range" and self.frames % RANGE_EVERY == 0:
+            self.range_view.refresh()  # off screen it waits (show_room brings it up to date)
         if self.frames % SLOW_EVERY == 0:
             self.notes.sync()
             self.notes.refresh_age()
@@ -287,6 +287,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self.room_buttons.button(i).setChecked(True)
         if key == "range":
             self.strength.refresh(*self._timeline())
+            self.range_view.refresh()
 
     def settings_in_force(self):
         """The settings as the last accepted edits leave them (the engine applies
