@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import csv
 import io
-import math
 import os
 import shutil
 import threading
@@ -289,11 +288,7 @@ class RunWriter:
                 elif kind == "rows":
                     self._write_rows(item[1], item[2], item[3])
                 elif kind == "rowsets":
-                    for i in range(max(len(r) for r in item[2])):
-                        for chain, rows, flags in zip(item[1], item[2], item[3]):
-                            if i < len(rows):
-                                self._write_rows(chain, rows[i:i + 1], None if flags is None
-                                                 else (flags[0][i:i + 1], flags[1][i:i + 1]))
+                    self._write_rowsets(item[1], item[2], item[3])
                 elif kind == "meta":
                     self._write_meta()
                 elif kind == "flush":
@@ -311,15 +306,36 @@ class RunWriter:
             self._flush()
 
     def _write_rows(self, chain: str, rows: np.ndarray, flags) -> None:
-        w, fs = self._csv.writerow, self.rate_hz
-        nonfinite, clipped = flags if flags is not None else ((0,) * len(rows),) * 2
-        for r, nf, cl in zip(rows, nonfinite, clipped):
-            w((f"{r['index'] / fs:.6f}", chain, _g(r["amplitude"]), _g(r["phase_deg"]),
-               _g(r["in_phase"]), _g(r["quadrature"]), _g(r["noise"]), _g(r["snr_db"]),
-               _g(r["ref_hz"]), int(bool(r["locked"])), int(r["index"]),
-               _g(100.0 * r["noise_u"]), _g(r["snr_u_db"]), _g(r["vector_amplitude"]),
-               _g(r["amplitude_corrected"]), int(bool(r["biased"])), _g(r["offset_hz"]),
-               _g(r["offset_u_hz"]), LOCK_REASONS.get(int(r["lock_reason"]), ""), int(nf), int(cl)))
+        self._write_rowsets([chain], [rows], [flags])
+
+    def _write_rowsets(self, chains, rows_all, flags_all) -> None:
+        """CSV lines for several chains' rows, interleaved row by row (row 0 of
+        every chain, then row 1, ...).  The columns are taken out of the
+        structured arrays once (``tolist``), so a line costs Python floats, not
+        numpy scalars: about a third of the time per row."""
+        lens = [len(r) for r in rows_all]
+        if not sum(lens):
+            return
+        rows = np.concatenate(rows_all)
+        which = np.repeat(np.arange(len(rows_all)), lens)
+        pos = np.concatenate([np.arange(k) for k in lens])
+        order = np.lexsort((which, pos))
+        rows, which = rows[order], which[order].tolist()
+        nf = np.concatenate([np.asarray(f[0] if f is not None else np.zeros(k), np.int64)
+                             for f, k in zip(flags_all, lens)])[order].tolist()
+        cl = np.concatenate([np.asarray(f[1] if f is not None else np.zeros(k), np.int64)
+                             for f, k in zip(flags_all, lens)])[order].tolist()
+        col = {name: rows[name].tolist() for name in rows.dtype.names}
+        fs, g, reasons = self.rate_hz, _g, LOCK_REASONS
+        self._csv.writerows(
+            (f"{col['index'][i] / fs:.6f}", chains[which[i]], g(col["amplitude"][i]),
+             g(col["phase_deg"][i]), g(col["in_phase"][i]), g(col["quadrature"][i]),
+             g(col["noise"][i]), g(col["snr_db"][i]), g(col["ref_hz"][i]), int(bool(col["locked"][i])),
+             int(col["index"][i]), g(100.0 * col["noise_u"][i]), g(col["snr_u_db"][i]),
+             g(col["vector_amplitude"][i]), g(col["amplitude_corrected"][i]), int(bool(col["biased"][i])),
+             g(col["offset_hz"][i]), g(col["offset_u_hz"][i]), reasons.get(int(col["lock_reason"][i]), ""),
+             nf[i], cl[i])
+            for i in range(len(rows)))
         self.rows += len(rows)
 
     def _flush(self) -> None:
@@ -436,7 +452,7 @@ def make_marker(time_s: float, distance_m: float | None, note: str = "") -> dict
 
 def _g(x) -> str:
     x = float(x)
-    return "nan" if math.isnan(x) else f"{x:.9g}"
+    return "nan" if x != x else f"{x:.9g}"
 
 
 def _plain(d: Any) -> Any:
