@@ -4,6 +4,12 @@ import pathlib
 import pytest
 
 os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
+# designed sections are cached on disk (livefilt.dsp.memo): the tests keep
+# theirs in a folder of their own, not in the user's cache
+if "LIVEFILT_CACHE_DIR" not in os.environ:
+    import tempfile
+
+    os.environ["LIVEFILT_CACHE_DIR"] = tempfile.mkdtemp(prefix="livefilt-test-cache-")
 
 ARTIFACTS = pathlib.Path(__file__).parent / "artifacts"
 

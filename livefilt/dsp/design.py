@@ -36,14 +36,14 @@ from __future__ import annotations
 
 import logging
 import math
-import re
 from dataclasses import dataclass, fields as _dataclass_fields, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
-from scipy import optimize, signal
+import scipy  # its submodules load on first use: scipy.signal alone takes ~1 s, kept off the start-up path
 
 from livefilt import fields
+from livefilt.dsp.memo import remembered
 from livefilt.errors import SettingError
 from livefilt.fields import MISSING as _MISSING, tidy as _tidy
 
@@ -261,11 +261,21 @@ def stage_sos(spec: StageSpec, fs: float) -> np.ndarray:
     (:func:`scipy.signal.bilinear_zpk`) prewarped so that the digital -3 dB
     point equals the analog one.
 
+    Designed once per stage and sample rate: later calls, and later runs,
+    take the sections from :func:`livefilt.dsp.memo.remembered` (a stage
+    refused once is designed, and refused, again each time).
+
     References
     ----------
     .. [Orfanidis] S. J. Orfanidis, Introduction to Signal Processing,
        Prentice-Hall, 1996, ch. 11.
     """
+    key = repr((sorted(spec.to_mapping().items()), float(fs).hex()))
+    return remembered("sections", key, lambda: _design_stage(spec, fs))
+
+
+def _design_stage(spec: StageSpec, fs: float) -> np.ndarray:
+    """:func:`stage_sos` without the cache: design and check."""
     nyq = _nyquist(fs)
     if spec.type == "notch":
         sos = _notch_sos(spec, fs, nyq)
@@ -275,7 +285,7 @@ def stage_sos(spec: StageSpec, fs: float) -> np.ndarray:
             z, p, k = _rc_digital_zpk(spec, fs, nyq)
         else:
             z, p, k = _iir_digital_zpk(spec, fs, nyq)
-        sos = signal.zpk2sos(z, p, k)
+        sos = scipy.signal.zpk2sos(z, p, k)
         _check_sections(spec, sos, fs)
         _check_precision(spec, sos, (z, p, k), fs)
     sos = np.ascontiguousarray(sos, dtype=np.float64)
@@ -359,7 +369,7 @@ def analog_cutoff_hz(b: Sequence[float], a: Sequence[float]) -> float:
         if excess_db(hi) > 0:
             break
         hi += math.log(10.0)
-    w3 = math.exp(optimize.brentq(excess_db, lo, hi, xtol=1e-14, rtol=1e-14))
+    w3 = math.exp(scipy.optimize.brentq(excess_db, lo, hi, xtol=1e-14, rtol=1e-14))
     return w3 / (2.0 * math.pi)
 
 
@@ -367,7 +377,7 @@ def frequency_response(sos: np.ndarray, freqs_hz: Sequence[float] | np.ndarray,
                        fs: float) -> np.ndarray:
     """Complex response of ``sos`` at ``freqs_hz`` (Hz), via :func:`scipy.signal.sosfreqz`."""
     freqs = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
-    return signal.sosfreqz(sos, worN=freqs, fs=fs)[1]
+    return scipy.signal.sosfreqz(sos, worN=freqs, fs=fs)[1]
 
 
 def rc_corner_hz(spec: StageSpec) -> tuple[float, float]:
@@ -393,7 +403,7 @@ def rc_departure(spec: StageSpec, fs: float, freqs_hz) -> np.ndarray:
     """
     f = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
     b, a = rc_analog(spec.r_ohm, spec.c_farad, spec.sections, spec.buffered, spec.response)
-    analog = signal.freqs(b, a, worN=2.0 * np.pi * f)[1]
+    analog = scipy.signal.freqs(b, a, worN=2.0 * np.pi * f)[1]
     digital = frequency_response(stage_sos(replace(spec, gain_db=0.0), fs), f, fs)
     with np.errstate(divide="ignore"):
         return 20.0 * np.log10(np.abs(digital)) - 20.0 * np.log10(np.abs(analog))
@@ -508,7 +518,7 @@ def _iir_digital_zpk(spec: StageSpec, fs: float, nyq: float):
         wn: Any = [lo, hi]
     else:
         wn = _below_nyquist(spec.cutoff_hz, "cutoff_hz", nyq)
-    return signal.iirfilter(spec.order, wn, rp=spec.ripple_db, rs=spec.stop_db,
+    return scipy.signal.iirfilter(spec.order, wn, rp=spec.ripple_db, rs=spec.stop_db,
                             btype=spec.type, ftype=_FTYPE[spec.design],
                             output="zpk", fs=fs)
 
@@ -527,7 +537,7 @@ def _notch_sos(spec: StageSpec, fs: float, nyq: float) -> np.ndarray:
                            f"every notch must stay below Nyquist ({nyq:.10g} Hz)")
     rows = []
     for k in range(1, spec.harmonics + 1):
-        b, a = signal.iirnotch(k * f0, spec.q, fs=fs)
+        b, a = scipy.signal.iirnotch(k * f0, spec.q, fs=fs)
         rows.append(np.concatenate([b, a]))
     return np.array(rows)
 
@@ -552,7 +562,7 @@ def _rc_digital_zpk(spec: StageSpec, fs: float, nyq: float):
     # fs' = w3 / (2 tan(w3 / 2 fs)) puts analog w3 exactly at digital w3.
     # Working in p = s RC keeps the polynomials well scaled, so fs' is scaled too.
     fs_warp = w3 / (2.0 * math.tan(w3 / (2.0 * fs)))
-    return signal.bilinear_zpk(z, p, k, fs_warp * rc)
+    return scipy.signal.bilinear_zpk(z, p, k, fs_warp * rc)
 
 
 def _rc_normalised(sections: int, buffered: bool, response: str):

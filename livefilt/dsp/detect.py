@@ -78,10 +78,10 @@ from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
-from scipy.signal import lfilter
-from scipy.special import gamma, gammaincinv
+import scipy  # its submodules load on first use (the straightforward path, settling times)
 
 from livefilt.dsp import kernels
+from livefilt.dsp.memo import remembered
 from livefilt import fields
 from livefilt.dsp.track import Tracker
 from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
@@ -399,17 +399,22 @@ class _Detector:
         closed form by integrating ``|H|^2`` of n RC sections).
         """
         n = self.n_sections
-        return gamma(n - 0.5) / (4.0 * math.sqrt(math.pi) * gamma(n) * self.tau)
+        return math.gamma(n - 0.5) / (4.0 * math.sqrt(math.pi) * math.gamma(n) * self.tau)
 
     def settling_s(self, fraction: float) -> float:
         """Time for a step to reach ``fraction`` of its final value, s.
 
         ``tau * P^-1(n, fraction)``, P the regularised lower incomplete gamma
-        function (DLMF 8.2; REFERENCES row 3c).
+        function (DLMF 8.2; REFERENCES row 3c); the inverse is kept per
+        (n, fraction) (:func:`livefilt.dsp.memo.remembered`), so a start-up
+        need not import scipy.special.
         """
         if not 0 < fraction < 1:
             raise SettingError("fraction", fraction, "must be above 0 and below 1")
-        return float(self.tau * gammaincinv(self.n_sections, fraction))
+        n = self.n_sections
+        p_inv = remembered("gammaincinv", repr((n, float(fraction).hex())),
+                           lambda: np.array([scipy.special.gammaincinv(n, fraction)]))
+        return float(self.tau * p_inv[0])
 
     def reset(self) -> None:
         """Forget all state (filters start from zero, the noise window empties)."""
@@ -488,7 +493,7 @@ class _Detector:
     def _lowpass(self, work: np.ndarray) -> np.ndarray:
         """Run the n sections over ``work`` (channels, n) in place of state ``zi``."""
         for i in range(self.n_sections):
-            work, self.zi[i] = lfilter(self.b, self.a, work, axis=1, zi=self.zi[i])
+            work, self.zi[i] = scipy.signal.lfilter(self.b, self.a, work, axis=1, zi=self.zi[i])
         return work
 
     def _row_slice(self, start_index: int, n: int) -> slice:
@@ -771,7 +776,7 @@ class LockIn(_Detector):
         r = 0.0 if not math.isfinite(r) else r
         if r >= band:
             return math.inf
-        return float(self.tau * gammaincinv(self.n_sections, 1.0 - (band - r)))
+        return float(self.tau * scipy.special.gammaincinv(self.n_sections, 1.0 - (band - r)))
 
     @property
     def follow_hz(self) -> float:
@@ -1009,9 +1014,9 @@ class _RefTracker:
         if self.mean_zi is None:  # the running mean starts at the first sample
             self.mean_zi = np.array([self.mean_a * ref[0]])
         a = self.mean_a
-        mean, self.mean_zi = lfilter([1 - a], [1, -a], ref, zi=self.mean_zi)
+        mean, self.mean_zi = scipy.signal.lfilter([1 - a], [1, -a], ref, zi=self.mean_zi)
         d = ref - mean
-        dev, self.dev_zi = lfilter([1 - a], [1, -a], np.abs(d), zi=self.dev_zi)
+        dev, self.dev_zi = scipy.signal.lfilter([1 - a], [1, -a], np.abs(d), zi=self.dev_zi)
         h = self.hyst * dev
         up, down = d > h, d < -h
         # Schmitt trigger, vectorised: the state is the last threshold passed

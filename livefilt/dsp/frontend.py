@@ -43,12 +43,13 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any, Mapping, Sequence
+from typing import Any, Mapping
 
 import numpy as np
-from scipy import signal
+import scipy  # its submodules load on first use: scipy.signal alone takes ~1 s, kept off the start-up path
 
 from livefilt.dsp import parts
+from livefilt.dsp.memo import remembered
 from livefilt.dsp.design import DESIGNS, StageSpec, analog_cutoff_hz, parse_si, rc_analog
 from livefilt.errors import SettingError
 
@@ -260,7 +261,7 @@ def stage_zpk(stage: FrontStage) -> tuple[np.ndarray, np.ndarray, float]:
         return z.astype(complex), np.roots(a), g * lead / a[0]
     wn = ([2 * math.pi * f for f in stage.band_hz] if stage.band_hz
           else 2 * math.pi * stage.cutoff_hz)
-    z, p, k = signal.iirfilter(stage.order, wn, rp=stage.ripple_db, rs=stage.stop_db,
+    z, p, k = scipy.signal.iirfilter(stage.order, wn, rp=stage.ripple_db, rs=stage.stop_db,
                                btype=stage.type, analog=True, ftype=_FTYPE[stage.design],
                                output="zpk")
     return np.asarray(z, complex), np.asarray(p, complex), g * float(k)
@@ -270,7 +271,7 @@ def stage_response(stage: FrontStage, freqs_hz) -> np.ndarray:
     """Complex response of one stage at ``freqs_hz`` (:func:`scipy.signal.freqs_zpk`)."""
     f = np.atleast_1d(np.asarray(freqs_hz, dtype=float))
     z, p, k = stage_zpk(stage)
-    return signal.freqs_zpk(z, p, k, worN=2 * math.pi * f)[1]
+    return scipy.signal.freqs_zpk(z, p, k, worN=2 * math.pi * f)[1]
 
 
 def response(frontend: Frontend | None, freqs_hz) -> np.ndarray:
@@ -351,13 +352,13 @@ def discrete(frontend: Frontend | None, fs: float, match_hz: float | None = None
     if frontend is not None:
         for s in frontend.stages:
             z, p, k = stage_zpk(s)
-            ss = signal.zpk2ss(z, p, k)
-            A, B, C, D, _ = signal.cont2discrete(ss, 1.0 / fs, method="foh")
-            rows.append(signal.zpk2sos(*signal.ss2zpk(A, B, C, D)))
+            ss = scipy.signal.zpk2ss(z, p, k)
+            A, B, C, D, _ = scipy.signal.cont2discrete(ss, 1.0 / fs, method="foh")
+            rows.append(scipy.signal.zpk2sos(*scipy.signal.ss2zpk(A, B, C, D)))
     sos = np.vstack(rows)
     if match_hz is not None and frontend is not None:
         want = abs(response(frontend, [match_hz])[0])
-        got = abs(signal.sosfreqz(sos, worN=[match_hz], fs=fs)[1][0])
+        got = abs(scipy.signal.sosfreqz(sos, worN=[match_hz], fs=fs)[1][0])
         if got > 0:
             sos[0, :3] *= want / got
     return sos
@@ -421,9 +422,14 @@ def _rc_values(table: Mapping[str, Any]) -> dict[str, Any]:
 def rc_factor(sections: int, buffered: bool, response: str) -> float:
     """-3 dB point of n equal RC sections in units of ``1 / (2 pi R C)``
     (1 for one section; 0.6436 for two buffered, 0.3742 for two loaded low-pass:
-    REFERENCES rows 3b and 4)."""
-    b, a = rc_analog(1.0, 1.0, sections, buffered, response)
-    return 2 * math.pi * analog_cutoff_hz(b, a)
+    REFERENCES rows 3b and 4).  Solved once per combination, then kept
+    (:func:`livefilt.dsp.memo.remembered`)."""
+    def solve():
+        b, a = rc_analog(1.0, 1.0, sections, buffered, response)
+        return np.array([2 * math.pi * analog_cutoff_hz(b, a)])
+
+    return float(remembered("rc_factor", repr((int(sections), bool(buffered), str(response))),
+                            solve)[0])
 
 
 def _freq(value: Any, field: str) -> float:

@@ -25,7 +25,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Mapping, NamedTuple, Sequence
 
 import numpy as np
-from scipy import signal
+import scipy  # its submodules load on first use: scipy.signal alone takes ~1 s, kept off the start-up path
 
 from livefilt.dsp import frontend as front
 from livefilt.dsp.design import StageSpec, chain_sos, frequency_response
@@ -176,7 +176,7 @@ def _lowpass_detector(det, spec: DetectorSpec, fs: float) -> DetectorFigures:
     b, a, n = det.b, det.a, det.n_sections
 
     def baseband(offset_hz):
-        h = signal.freqz(b, a, worN=np.abs(np.atleast_1d(offset_hz)), fs=fs)[1]
+        h = scipy.signal.freqz(b, a, worN=np.abs(np.atleast_1d(offset_hz)), fs=fs)[1]
         return h ** n
 
     return DetectorFigures(spec.type, float(det.enbw_hz), float(det.settling_s(SETTLE_FRACTION)),
@@ -347,7 +347,7 @@ def step_response(stages: Sequence[StageSpec], detector: DetectorSpec,
     n = int(dur * fs)
     every = max(1, n // 200_000)
     x = np.sin(2 * np.pi * ref_hz * np.arange(n) / fs)
-    y = signal.sosfilt(sos, signal.sosfilt(sos_front, x))
+    y = scipy.signal.sosfilt(sos, scipy.signal.sosfilt(sos_front, x))
     d = make_detector(detector, ReferenceSpec(frequency_hz=ref_hz), fs, every)
     rows = d.process(y, 0)
     final = abs(front.response(frontend_, [ref_hz])[0] * digital_response(stages, [ref_hz], fs)[0]) / math.sqrt(2)

@@ -28,13 +28,41 @@ import functools
 import logging
 
 import numpy as np
-from scipy import signal
+import scipy  # its submodules load on first use: scipy.signal alone takes ~1 s, kept off the start-up path
 
 from livefilt.dsp import kernels
 
-__all__ = ["SosFilter", "FilterBank"]
+__all__ = ["steady_state", "SosFilter", "FilterBank"]
 
 log = logging.getLogger(__name__)
+
+
+
+def steady_state(sos: np.ndarray) -> np.ndarray:
+    """State ``zi`` (n, 2) of the cascade at rest under a unit constant input.
+
+    Transposed direct form II of one section, ``y = b0 x + z1``,
+    ``z1' = b1 x - a1 y + z2``, ``z2' = b2 x - a2 y``, at rest (``z' = z``)
+    with input ``x`` gives ``y = G x`` (``G = (b0 + b1 + b2) / (1 + a1 + a2)``,
+    the DC gain), ``z2 = (b2 - a2 G) x`` and ``z1 = (G - b0) x``; each
+    section's input is the previous sections' DC gains times the level.  The
+    same state as :func:`scipy.signal.sosfilt_zi` (which solves the linear
+    system numerically) without importing scipy.signal at start-up.  A
+    section with a pole at DC has no rest state: its state is left at 0.
+    """
+    sos = np.asarray(sos, dtype=np.float64)
+    zi = np.zeros((sos.shape[0], 2))
+    x = 1.0
+    for i, (b0, b1, b2, a0, a1, a2) in enumerate(sos):
+        b0, b1, b2, a1, a2 = b0 / a0, b1 / a0, b2 / a0, a1 / a0, a2 / a0
+        den = 1.0 + a1 + a2
+        if den == 0.0:
+            x = 0.0
+            continue
+        g = (b0 + b1 + b2) / den
+        zi[i] = ((g - b0) * x, (b2 - a2 * g) * x)
+        x *= g
+    return zi
 
 
 class SosFilter:
@@ -109,7 +137,7 @@ class SosFilter:
                 y[...] = tmp
             self._last = float(x[-1])
             return y
-        y, zf = signal.sosfilt(self.sos, x, zi=self.zi)
+        y, zf = scipy.signal.sosfilt(self.sos, x, zi=self.zi)
         self.zi[...] = zf
         self._last = float(x[-1])
         if out is None:
@@ -125,10 +153,11 @@ class SosFilter:
     def settle(self, level: float) -> None:
         """Set the state to the steady state for a constant input ``level``.
 
-        Uses :func:`scipy.signal.sosfilt_zi`, so a constant input ``level``
-        then gives a constant output ``level`` times the DC gain.
+        The state of :func:`scipy.signal.sosfilt_zi` (checked against it in
+        the tests), in closed form (:func:`steady_state`), so a constant input
+        ``level`` then gives a constant output ``level`` times the DC gain.
         """
-        self.zi[...] = signal.sosfilt_zi(self.sos) * float(level)
+        self.zi[...] = steady_state(self.sos) * float(level)
         self._last = float(level)
 
     def retune(self, new_sos: np.ndarray) -> None:
@@ -157,7 +186,7 @@ class SosFilter:
 
         The running state is not touched.
         """
-        return signal.sosfilt(self.sos, np.ones(int(n)))
+        return scipy.signal.sosfilt(self.sos, np.ones(int(n)))
 
 
 class FilterBank:
