@@ -555,6 +555,7 @@ class LockIn(_Detector):
             ratio = Fraction(reference.frequency_hz) / Fraction(fs)
             self._p, self._q = ratio.numerator, ratio.denominator
             self._cycles_per_sample = float(ratio)
+            self._rotation = kernels.rotation_table(self._cycles_per_sample)
             self._anchor1 = np.empty(1)
         super().__init__(spec, fs, output_every, exact_path)
 
@@ -616,8 +617,9 @@ class LockIn(_Detector):
         if cycles is None:
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
-            m = self._kern.mix_internal_rows(x, offset, fracs, self._cycles_per_sample, self.phase_rad, b0, b1, a1,
-                                             self.zi, first, self.output_every, rows, self._scratch())
+            m = self._kern.mix_internal_rows(x, offset, fracs, self._cycles_per_sample,
+                                             self.phase_rad, self._rotation, b0, b1, a1, self.zi,
+                                             first, self.output_every, rows, self._scratch())
         else:
             m = self._kern.mix_cycles_rows(x, cycles, self.phase_rad, b0, b1, a1, self.zi,
                                            first, self.output_every, rows, self._scratch())
