@@ -217,7 +217,10 @@ class RunWriter:
         with self._cv:
             if self._closing:
                 return False
-            while self._queued + nbytes > self._budget and not force and self.failed is None:
+            # an item larger than the whole budget waits for an empty queue,
+            # not for room that can never come
+            while (self._queued and self._queued + nbytes > self._budget and not force
+                   and self.failed is None):
                 if not self.wait_when_full:
                     return False
                 self._cv.wait(0.5)

@@ -120,3 +120,23 @@ def test_recorder_that_may_wait_loses_nothing(tmp_path):
     assert rec.dropped_frames == 0 and rec.frames == 40 * 48000
     data, _ = soundfile.read(tmp_path / "r" / "raw.wav", dtype="float32")
     assert np.array_equal(data[-48000:], block)
+
+
+def test_a_block_larger_than_the_whole_queue_is_written_not_waited_on(tmp_path):
+    """A step longer than the queue's byte budget (2.4 MB against 1 MB) waits
+    for an empty queue instead of for room that can never come (it hung)."""
+    import threading
+
+    rec = RunWriter(tmp_path / "r", "", {"driver": "test"}, 48000.0, 2, wait_when_full=True, queue_s=0.1)
+    block = np.ones((300000, 2), np.float32)
+    done = threading.Event()
+
+    def push():
+        for _ in range(3):
+            rec.write_block(block)
+        done.set()
+
+    threading.Thread(target=push, daemon=True).start()
+    assert done.wait(20), "write_block waited forever on a block larger than the queue"
+    rec.close({})
+    assert rec.dropped_frames == 0 and rec.frames == 3 * 300000
