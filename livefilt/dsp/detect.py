@@ -82,6 +82,7 @@ import scipy  # its submodules load on first use (the straightforward path, sett
 
 from livefilt.dsp import kernels
 from livefilt.dsp.memo import remembered
+from livefilt.dsp.segments import RowLowpass
 from livefilt import fields
 from livefilt.dsp.track import Tracker
 from livefilt.dsp.noise import MIN_DOF, WindowStats, WindowTables, default_window_s
@@ -384,6 +385,9 @@ class _Detector:
         self.exact_path = bool(exact_path)
         self._kern = None if self.exact_path else kernels.compiled()
         self._coef = (float(self.b[0]), float(self.b[1]), float(self.a[1]))
+        #: the compiled path's output low-pass, read at the rows only (lock-in
+        #: on an internal reference; the others run it sample by sample)
+        self._lp = None
         self._rows_buf = np.empty((self._channels, 0))
         #: rows in the noise window
         self.window_rows = max(2, int(round(spec.noise_window_s * self.fs / output_every)))
@@ -419,6 +423,8 @@ class _Detector:
     def reset(self) -> None:
         """Forget all state (filters start from zero, the noise window empties)."""
         self.zi = np.zeros((self.n_sections, self._channels, 1))
+        if self._lp is not None:
+            self._lp.reset()
         self._stats = None
         self._quiet_until: int | None = None
 
@@ -438,6 +444,8 @@ class _Detector:
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
+        if self._lp is not None:
+            self._lp.hold()
 
     # The window's ring and tables are built at the first settled row: a
     # detector built only for its figures (ENBW, settling) at one row per
@@ -573,7 +581,9 @@ class LockIn(_Detector):
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost: the measured-reference tracker re-acquires, a
-        tracking loop's oscillator advances over the gap."""
+        tracking loop's oscillator advances over the gap; the output
+        low-pass keeps its state."""
+        super().note_gap(frames)
         if isinstance(self.tracker, Tracker):
             self.tracker.note_gap(frames)
         elif self.tracker is not None:
@@ -617,9 +627,12 @@ class LockIn(_Detector):
         if cycles is None:
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
-            m = self._kern.mix_internal_rows(x, offset, fracs, self._cycles_per_sample,
-                                             self.phase_rad, self._rotation, b0, b1, a1, self.zi,
-                                             first, self.output_every, rows, self._scratch())
+            if self._lp is None:
+                self._lp = RowLowpass(*self._coef, self.n_sections, 2, self.output_every)
+            mixed = self._buffer("mixed", (2, n))
+            self._kern.mix_internal(x, offset, fracs, self._cycles_per_sample, self.phase_rad,
+                                    self._rotation, mixed)
+            rows, m = self._lp.process(mixed, start_index)
         else:
             m = self._kern.mix_cycles_rows(x, cycles, self.phase_rad, b0, b1, a1, self.zi,
                                            first, self.output_every, rows, self._scratch())

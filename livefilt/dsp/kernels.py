@@ -14,11 +14,11 @@ API map
   - ``sos_bank(packed, plan, data, channels, y)``: every chain's cascade
     on one block of frames (n, channels) in one call (sections, state and
     last samples packed in one array, see :class:`~livefilt.dsp.sections.FilterBank`).
-  - ``mix_internal_rows(x, offset, fracs, cycles_per_sample, phase_rad, rot,
-    b0, b1, a1, zi, first, every, rows, work)``: dual-phase mixer on an
-    internal reference (``rot`` the phasor table, :func:`rotation_table`), then the detector's first-order output sections; returns the
-    number of rows written.  ``work`` (channels, >= n) is the caller's
-    scratch for the mixed block.
+  - ``mix_internal(x, offset, fracs, cycles_per_sample, phase_rad, rot,
+    u)``: dual-phase mixer on an internal reference (``rot`` the phasor
+    table, :func:`rotation_table`) into ``u`` (2, >= n); the output
+    low-pass then runs in segment form (:mod:`livefilt.dsp.segments`, with
+    ``segment_steps(...)`` stepping the state across a block's segments).
   - ``mix_cycles_rows(x, cycles, phase_rad, b0, b1, a1, zi, first, every,
     rows, work)``: the same with the reference phase given per sample (measured
     reference).
@@ -32,10 +32,12 @@ Why a per-sample loop
 ---------------------
 scipy's ``sosfilt`` costs a few microseconds of call overhead, which
 dominates 64- to 256-sample blocks; one compiled call per block removes it.
-The lock-in keeps every sample of its output low-pass (the sections are
-recursive, so no sample may be skipped) but stores only the rows due, at
-sample indices ``first, first + every, ...``: that is exact, where decimating
-before the low-pass would add aliasing.  The internal reference is
+The RMS detector and the lock-in on a measured or tracked reference run
+their output low-pass through every sample and store only the rows due, at
+sample indices ``first, first + every, ...``; the lock-in on an internal
+reference evaluates it at the rows only, in segment form
+(:mod:`livefilt.dsp.segments`): every sample still counts, so nothing
+aliases, where decimating before the low-pass would.  The internal reference is
 ``cos``/``sin`` of the exact phase at every multiple of :data:`RESEED`
 samples, times a table of the rotations by 0 .. RESEED-1 samples: a few
 rounding steps from the exact phasor (1e-16), four multiplications a sample
@@ -72,7 +74,7 @@ import os
 
 import numpy as np
 
-__all__ = ["compiled", "rotation_table", "sos_block", "sos_bank", "mix_internal_rows", "mix_cycles_rows",
+__all__ = ["compiled", "rotation_table", "sos_block", "sos_bank", "mix_internal", "segment_steps", "mix_cycles_rows",
            "square_rows", "pll_block", "PLL_STATE", "RESEED", "ANCHOR", "NO_JIT_ENV"]
 
 log = logging.getLogger(__name__)
@@ -179,51 +181,80 @@ def sos_bank(packed, plan, data, channels, y):
             packed[8 * n_sec + c] = data[n - 1, col]
 
 
-@_jit
-def mix_internal_rows(x, offset, fracs, cps, phase, rot, b0, b1, a1, zi, first, every, rows, work):
-    """Internal-reference lock-in over one block; rows (2, m) written, m returned.
-
-    The block starts ``offset`` samples after an anchor, a sample index that
-    is a multiple of :data:`ANCHOR`; ``fracs[i]`` is the exact reference phase
-    (cycles, mod 1) at the ``i``-th anchor from there.  The phase ``j``
-    samples after an anchor is ``2 pi (j cps + frac) + phase``, evaluated at
-    every multiple ``r`` of :data:`RESEED`; the ``RESEED`` samples from there
-    take that phasor times ``rot[:, j] = (cos, sin)(2 pi j cps)``, one complex
-    product each and none depending on the sample before, so the loop runs
-    at the processor's full width and the phasor at a sample depends on its
-    index only, not on the split into blocks.
-    """
-    n = x.shape[0]
-    m = 0
-    for t0 in range(0, n, TILE):  # tiles stay in the processor's cache
-        t1 = min(n, t0 + TILE)
-        k = t0
-        while k < t1:
-            pos = offset + k
-            off = pos % ANCHOR
-            j0 = off % RESEED
-            theta = ((off - j0) * cps + fracs[pos // ANCHOR]) * _TWO_PI + phase
-            c = math.cos(theta) * _SQRT2
-            s = math.sin(theta) * _SQRT2
-            run = min(RESEED - j0, t1 - k)
-            xs = x[k:k + run]
-            tc = rot[0, j0:j0 + run]
-            ts = rot[1, j0:j0 + run]
-            wi = work[0, k - t0:k - t0 + run]
-            wq = work[1, k - t0:k - t0 + run]
-            for j in range(run):
-                wi[j] = (c * tc[j] - s * ts[j]) * xs[j]
-                wq[j] = -(s * tc[j] + c * ts[j]) * xs[j]
-            k += run
-        m = _lowpass_rows(b0, b1, a1, zi, work, t0, t1, first, every, rows, m)
-    return m
-
-
 def rotation_table(cps: float) -> np.ndarray:
     """``(cos, sin)(2 pi j cps)`` for j = 0 .. RESEED-1, shape (2, RESEED):
     the internal reference's rotations within a re-seed interval."""
     angle = _TWO_PI * (np.arange(RESEED) * float(cps))
     return np.ascontiguousarray(np.stack((np.cos(angle), np.sin(angle))))
+
+
+@_jit
+def mix_internal(x, offset, fracs, cps, phase, rot, u):
+    """Internal-reference mixer: ``u[0]``, ``u[1]`` (2, >= n) get the
+    in-phase and quadrature products of the block ``x``.
+
+    The block starts ``offset`` samples after an anchor, a sample index that
+    is a multiple of :data:`ANCHOR`; ``fracs[i]`` is the exact reference phase
+    (cycles, mod 1) at the ``i``-th anchor from there.  The phase ``j``
+    samples after an anchor is ``2 pi (j cps + frac) + phase``, evaluated at
+    every multiple of :data:`RESEED`; the ``RESEED`` samples from there take
+    that phasor times ``rot[:, j] = (cos, sin)(2 pi j cps)``, one complex
+    product each and none depending on the sample before, so the phasor at
+    a sample depends on its index only.
+    """
+    n = x.shape[0]
+    k = 0
+    while k < n:
+        pos = offset + k
+        off = pos % ANCHOR
+        j0 = off % RESEED
+        theta = ((off - j0) * cps + fracs[pos // ANCHOR]) * _TWO_PI + phase
+        c = math.cos(theta) * _SQRT2
+        s = math.sin(theta) * _SQRT2
+        run = min(RESEED - j0, n - k)
+        xs = x[k:k + run]
+        tc = rot[0, j0:j0 + run]
+        ts = rot[1, j0:j0 + run]
+        wi = u[0, k:k + run]
+        wq = u[1, k:k + run]
+        for j in range(run):
+            wi[j] = (c * tc[j] - s * ts[j]) * xs[j]
+            wq[j] = -(s * tc[j] + c * ts[j]) * xs[j]
+        k += run
+
+
+@_jit
+def segment_steps(mats, z, contrib, u, k0, index0, seglen, every, cd, rows, tmp):
+    """The output low-pass across a block's complete segments
+    (:class:`livefilt.dsp.segments.RowLowpass`): for segment ``j`` (samples
+    ``k0 + j seglen ..`` of ``u``, sample index ``index0 + j seglen``), when
+    that index is a multiple of ``every`` the row ``C z + D u`` is written to
+    ``rows[:, m]``; then ``z = Pcur z + contrib[:, j]`` and ``Pcur = P``
+    (``mats`` = [P, Pcur], ``cd`` = C then D, ``tmp`` (sections,) scratch).
+    Returns m."""
+    nsec = z.shape[0]
+    nch = z.shape[1]
+    m = 0
+    for j in range(contrib.shape[1]):
+        if (index0 + j * seglen) % every == 0:
+            for ch in range(nch):
+                y = cd[nsec] * u[ch, k0 + j * seglen]
+                for i in range(nsec):
+                    y += cd[i] * z[i, ch]
+                rows[ch, m] = y
+            m += 1
+        for ch in range(nch):
+            for i in range(nsec):
+                v = contrib[ch, j, i]
+                for q in range(nsec):
+                    v += mats[1, i, q] * z[q, ch]
+                tmp[i] = v
+            for i in range(nsec):
+                z[i, ch] = tmp[i]
+        for i in range(nsec):
+            for q in range(nsec):
+                mats[1, i, q] = mats[0, i, q]
+    return m
 
 
 @_jit
@@ -574,7 +605,8 @@ class _Kernels:
     def __init__(self):
         self.sos_block = sos_block
         self.sos_bank = sos_bank
-        self.mix_internal_rows = mix_internal_rows
+        self.mix_internal = mix_internal
+        self.segment_steps = segment_steps
         self.mix_cycles_rows = mix_cycles_rows
         self.square_rows = square_rows
         self.pll_block = pll_block
@@ -593,7 +625,7 @@ def _build() -> _Kernels:
     sos_block(one, np.zeros((1, 2)), x, np.zeros(4))
     sos_bank(np.concatenate((one.ravel(), np.zeros(3))), np.array([1, 0, 1]),
              np.zeros((4, 2), np.float32), np.array([1]), np.zeros((1, 4)))
-    mix_internal_rows(x, 4094, np.zeros(2), 0.1, 0.0, np.zeros((2, RESEED)), 0.5, 0.1, -0.4,
-                      np.zeros((1, 2, 1)), 0, 1,
-                      np.zeros((2, 4)), np.zeros((2, TILE)))
+    mix_internal(x, 4094, np.zeros(2), 0.1, 0.0, np.zeros((2, RESEED)), np.zeros((2, 4)))
+    segment_steps(np.zeros((2, 1, 1)), np.zeros((1, 2)), np.zeros((2, 1, 1)), np.zeros((2, 4)), 0,
+                  0, 1, 1, np.zeros(2), np.zeros((2, 4)), np.zeros(1))
     return _Kernels()
