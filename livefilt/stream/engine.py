@@ -45,8 +45,11 @@ __all__ = ["Engine", "EngineStats", "build_source"]
 log = logging.getLogger(__name__)
 
 
-#: Frames per step for a source not paced by a clock (Engine's ``batch``).
-FAST_STEP = 1 << 16
+#: Frames per step for a source not paced by a clock (Engine's ``batch``):
+#: 1 << 18 (1.4 s at 192 kHz, 2 MB of float32 stereo) against 1 << 16
+#: measured here, same run, recorder on: 0.67-0.73 against 0.50-0.54 of
+#: whole-array sosfilt at 192 kHz, 0.56-0.57 against 0.47-0.50 at 48 kHz.
+FAST_STEP = 1 << 18
 
 
 def build_source(settings: Settings, **overrides) -> Source:
