@@ -250,6 +250,10 @@ class StripChart(pg.GraphicsLayoutWidget):
                 fit_range(p, *ranges[id(p)])
         self.window = (t0, max(t_end, self.seconds))
         self.plots[0].setXRange(*self.window, padding=0)
+        for p in self.plots:
+            # move the views now: left to the paint (pyqtgraph's default), the move
+            # dirties every item again and Qt paints the strip a second time each frame
+            p.vb.updateMatrix()
         self.drawn_index = r.end_index
         self._prune_markers(t_end - 60.0)
 
