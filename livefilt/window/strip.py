@@ -193,7 +193,10 @@ class StripChart(pg.GraphicsLayoutWidget):
             p.hideButtons()
             p.disableAutoRange()
             p.getAxis("left").setWidth(70)
-            p.getAxis("left").enableAutoSIPrefix(False)
+            for side in ("left", "bottom", "top", "right"):
+                # no units on these axes, so no prefix ever shows; left on, each axis would
+                # rewrite its label's HTML on every range change (every frame, hidden ones too)
+                p.getAxis(side).enableAutoSIPrefix(False)
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
