@@ -21,6 +21,7 @@ import numpy as np
 import pyqtgraph as pg
 
 from livefilt.window import palette
+from livefilt.window.axes import QuickAxis
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
 
@@ -187,7 +188,7 @@ class StripChart(pg.GraphicsLayoutWidget):
         rows += [(f"chain {name}", palette.chain_pen(k, 1.0).color(), [i])
                  for k, (i, name) in enumerate(chains)]
         for r, (title, pen, streams) in enumerate(rows):
-            p = self.addPlot(row=r, col=0)
+            p = self.addPlot(row=r, col=0, axisItems={k: QuickAxis(k) for k in ("left", "bottom")})
             p.setLabel("left", f"{title} ({units})", color=pg.mkPen(pen).color().name())
             p.setMenuEnabled(False)
             p.hideButtons()
