@@ -21,6 +21,8 @@ import numpy as np
 import pyqtgraph as pg
 
 from livefilt.window import palette
+from livefilt.window.axes import QuickAxis
+from livefilt.window.envelope import EnvelopeItem
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
 
@@ -110,11 +112,12 @@ class MinMaxReducer:
         else:
             self._pending = np.array(buf, dtype=np.float32)
 
-    def arrays(self) -> tuple[np.ndarray, np.ndarray]:
-        """x (2m,) in seconds and y (n_streams, 2m): min and max of each column
+    def columns(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """t (m,) in seconds, lo and hi (n_streams, m): each column's min and max
         in time order, the partial column last; NaN where nothing arrived."""
         if self.newest is None and not self._pending.shape[1]:
-            return np.zeros(0), np.zeros((self.n_streams, 0))
+            empty = np.zeros((self.n_streams, 0), np.float32)
+            return np.zeros(0), empty, empty
         newest = self.newest if self.newest is not None else self.oldest - 1
         first = max(self.oldest, newest - self.n_cols + 1)
         cols = np.arange(first, newest + 1)
@@ -124,12 +127,16 @@ class MinMaxReducer:
             cols = np.append(cols, self._pending_start // self.spc)
             lo = np.concatenate([lo, self._pending.min(axis=1)[:, None]], axis=1)
             hi = np.concatenate([hi, self._pending.max(axis=1)[:, None]], axis=1)
-        m = len(cols)
-        x = np.repeat(cols * (self.spc / self.rate_hz), 2)
-        y = np.empty((self.n_streams, 2 * m), np.float32)
+        return cols * (self.spc / self.rate_hz), lo, hi
+
+    def arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """x (2m,) in seconds and y (n_streams, 2m): :meth:`columns` as a zigzag
+        (min, max of each column in turn)."""
+        t, lo, hi = self.columns()
+        y = np.empty((self.n_streams, 2 * len(t)), np.float32)
         y[:, 0::2] = lo
         y[:, 1::2] = hi
-        return x, y
+        return np.repeat(t, 2), y
 
     # -- private --------------------------------------------------------
     def _write(self, col0: int, lo: np.ndarray, hi: np.ndarray) -> None:
@@ -187,19 +194,22 @@ class StripChart(pg.GraphicsLayoutWidget):
         rows += [(f"chain {name}", palette.chain_pen(k, 1.0).color(), [i])
                  for k, (i, name) in enumerate(chains)]
         for r, (title, pen, streams) in enumerate(rows):
-            p = self.addPlot(row=r, col=0)
+            p = self.addPlot(row=r, col=0, axisItems={k: QuickAxis(k) for k in ("left", "bottom")})
             p.setLabel("left", f"{title} ({units})", color=pg.mkPen(pen).color().name())
             p.setMenuEnabled(False)
             p.hideButtons()
             p.disableAutoRange()
             p.getAxis("left").setWidth(70)
-            p.getAxis("left").enableAutoSIPrefix(False)
+            for side in ("left", "bottom", "top", "right"):
+                # no units on these axes, so no prefix ever shows; left on, each axis would
+                # rewrite its label's HTML on every range change (every frame, hidden ones too)
+                p.getAxis(side).enableAutoSIPrefix(False)
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
                 p.hideAxis("bottom")  # a scrolling axis is redrawn every frame: keep only the last
-            for _ in streams:  # bare curve items: PlotDataItem's extra work is not needed here
-                c = pg.PlotCurveItem(pen=pg.mkPen(pen, width=1), skipFiniteCheck=True)
+            for _ in streams:  # each envelope a filled band (see .envelope)
+                c = EnvelopeItem(pg.mkPen(pen, width=1))
                 p.addItem(c)
                 self.curves.append(c)
             self.plots.append(p)
@@ -231,25 +241,28 @@ class StripChart(pg.GraphicsLayoutWidget):
         if data.shape[1]:
             self._cursor = start + data.shape[1]
             r.push(start, data[self.streams])
-        x, y = r.arrays()
+        t, lo, hi = r.columns()
         t_end = r.end_index / tap.rate_hz
         t0 = max(0.0, t_end - self.seconds)
-        shown = x >= t0 - r.spc / tap.rate_hz
-        x, y = x[shown], y[:, shown]
-        connect = "all" if np.isfinite(y).all() else "finite"
+        shown = t >= t0 - r.spc / tap.rate_hz
+        t, lo, hi = t[shown], lo[:, shown], hi[:, shown]
         for k, c in enumerate(self.curves):
-            c.setData(x, y[k], connect=connect)
+            c.set_columns(t, lo[k], hi[k])
         ranges: dict = {}
         for k, p in enumerate(self._curve_plot):
-            if len(x) and np.isfinite(y[k]).any():
-                lo, hi = float(np.nanmin(y[k])), float(np.nanmax(y[k]))
-                a, b = ranges.get(id(p), (lo, hi))
-                ranges[id(p)] = (min(a, lo), max(b, hi))
+            if len(t) and np.isfinite(lo[k]).any():
+                a0, b0 = float(np.nanmin(lo[k])), float(np.nanmax(hi[k]))
+                a, b = ranges.get(id(p), (a0, b0))
+                ranges[id(p)] = (min(a, a0), max(b, b0))
         for p in self.plots:
             if id(p) in ranges:
                 fit_range(p, *ranges[id(p)])
         self.window = (t0, max(t_end, self.seconds))
         self.plots[0].setXRange(*self.window, padding=0)
+        for p in self.plots:
+            # move the views now: left to the paint (pyqtgraph's default), the move
+            # dirties every item again and Qt paints the strip a second time each frame
+            p.vb.updateMatrix()
         self.drawn_index = r.end_index
         self._prune_markers(t_end - 60.0)
 
