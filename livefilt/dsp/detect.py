@@ -566,6 +566,9 @@ class LockIn(_Detector):
             self._rotation = kernels.rotation_table(self._cycles_per_sample)
             self._anchor1 = np.empty(1)
         super().__init__(spec, fs, output_every, exact_path)
+        if self._kern is not None and not reference.measured and not reference.track:
+            # built here, not at the first block: its weights take a moment
+            self._lp = RowLowpass(*self._coef, self.n_sections, 2, output_every)
 
     def reset(self) -> None:
         super().reset()
@@ -627,8 +630,6 @@ class LockIn(_Detector):
         if cycles is None:
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
-            if self._lp is None:
-                self._lp = RowLowpass(*self._coef, self.n_sections, 2, self.output_every)
             mixed = self._buffer("mixed", (2, n))
             self._kern.mix_internal(x, offset, fracs, self._cycles_per_sample, self.phase_rad,
                                     self._rotation, mixed)
