@@ -267,9 +267,15 @@ class Engine:
             doc = self.current_settings().to_mapping()
             doc["source"] = {**doc["source"], **{k: v for k, v in self.source.resolved.items()
                                                  if k not in doc["source"]}}
+            # room for two whole steps waiting: the engine queues the next
+            # while the recorder writes the last, and waits only when the
+            # disk is slower than the processing (with less room than one
+            # step, a source not paced by a clock waited for every write)
+            step_s = self.batch * self.block / self.rate_hz
             self.recorder = RunWriter(path, toml_text(doc), info,
                                       self.rate_hz, self.source.channels,
-                                      wait_when_full=not self.source.realtime)
+                                      wait_when_full=not self.source.realtime,
+                                      queue_s=max(4.0, 2.5 * step_s))
             self.recorder.refresh = lambda: (self.counts(), self.source_state())
             return self.recorder
 
