@@ -295,8 +295,9 @@ def _pipeline(bench, quick: bool) -> list[dict]:
     import soundfile  # only here: the other measures need no audio library
 
     fs = bench.source.rate_hz
-    # several of the engine's long steps (1 << 18 frames) even at 48 kHz
-    seconds = 20.0 if quick else 60.0
+    # many of the engine's long steps (1 << 18 frames) even at 48 kHz, so the
+    # first step's one-off work (settling, the noise tables) weighs little
+    seconds = 60.0 if quick else 120.0
     busy, wall, limit = [], [], []
     soses = [chain_sos(c.stages, fs) for c in bench.chains]
     columns = np.random.default_rng(1241).standard_normal((len(soses), int(seconds * fs)))
