@@ -625,8 +625,6 @@ class LockIn(_Detector):
         if self._kern is None:
             return self._process_exact(x, start_index, cycles, ref_hz, locked, why)
         first = (-start_index) % self.output_every
-        rows = self._row_buffer(n)
-        b0, b1, a1 = self._coef
         if cycles is None:
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
@@ -635,6 +633,8 @@ class LockIn(_Detector):
                                     self._rotation, mixed)
             rows, m = self._lp.process(mixed, start_index)
         else:
+            rows = self._row_buffer(n)
+            b0, b1, a1 = self._coef
             m = self._kern.mix_cycles_rows(x, cycles, self.phase_rad, b0, b1, a1, self.zi,
                                            first, self.output_every, rows, self._scratch())
         if m == 0:

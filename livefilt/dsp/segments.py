@@ -59,6 +59,7 @@ class RowLowpass:
         self._cd = np.append(self.C, self.D)
         self._tmp = np.empty(n)
         self._room = np.empty((channels, 0))
+        self._none = np.empty((channels, 0))
         self.useg = np.zeros((channels, self.seglen))
         self.reset()
 
@@ -135,7 +136,6 @@ class RowLowpass:
         self._at = start
         self._next = start
         self._resume = False
-        self._none = np.empty((self.z.shape[1], 0))
 
     def _rows_room(self, m: int) -> np.ndarray:
         if self._room.shape[1] < m:

@@ -132,7 +132,8 @@ class Engine:
         if batch is None:
             # many chains: shorter steps, so a step's outputs (8 bytes per
             # sample and chain) stay near the processor's caches
-            frames = min(FAST_STEP, max(FAST_STEP >> 2, (FAST_STEP << 1) // max(1, len(self.settings.chains))))
+            chains = max(1, len(self.settings.chains))
+            frames = min(FAST_STEP, max(FAST_STEP // 4, 2 * FAST_STEP // chains))
             batch = -(-frames // self.block) if self._fast else 32
         self.batch = max(1, int(batch))
         self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))

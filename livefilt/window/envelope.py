@@ -23,7 +23,14 @@ import pyqtgraph as pg
 from pyqtgraph import functions as fn
 from PySide6 import QtCore, QtGui
 
-__all__ = ["EnvelopeItem"]
+__all__ = ["EnvelopeItem", "zigzag"]
+
+
+def zigzag(t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Columns as the line through min, max of each in turn: x (2m,), y (..., 2m)."""
+    y = np.empty(lo.shape[:-1] + (2 * lo.shape[-1],), np.float32)
+    y[..., 0::2], y[..., 1::2] = lo, hi
+    return np.repeat(t, 2), y
 
 
 class EnvelopeItem(pg.GraphicsObject):
@@ -71,9 +78,7 @@ class EnvelopeItem(pg.GraphicsObject):
 
     def getData(self) -> tuple[np.ndarray, np.ndarray]:  # noqa: N802 (pyqtgraph name)
         """The zigzag this band stands for: x (2m,), y (2m,) = min, max of each column."""
-        y = np.empty(2 * len(self._t), np.float32)
-        y[0::2], y[1::2] = self._lo, self._hi
-        return np.repeat(self._t, 2), y
+        return zigzag(self._t, self._lo, self._hi)
 
     def boundingRect(self):  # noqa: N802 (Qt name)
         if not self._polygons:

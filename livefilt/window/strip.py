@@ -22,7 +22,7 @@ import pyqtgraph as pg
 
 from livefilt.window import palette
 from livefilt.window.axes import QuickAxis
-from livefilt.window.envelope import EnvelopeItem
+from livefilt.window.envelope import EnvelopeItem, zigzag
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
 
@@ -132,11 +132,7 @@ class MinMaxReducer:
     def arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """x (2m,) in seconds and y (n_streams, 2m): :meth:`columns` as a zigzag
         (min, max of each column in turn)."""
-        t, lo, hi = self.columns()
-        y = np.empty((self.n_streams, 2 * len(t)), np.float32)
-        y[:, 0::2] = lo
-        y[:, 1::2] = hi
-        return np.repeat(t, 2), y
+        return zigzag(*self.columns())
 
     # -- private --------------------------------------------------------
     def _write(self, col0: int, lo: np.ndarray, hi: np.ndarray) -> None:
