@@ -12,7 +12,7 @@ data (NaN) break the band, as ``connect="finite"`` broke the line.
 
 API
 ---
-- :class:`EnvelopeItem` (pen): ``set_columns(t, lo, hi)``; ``getData()`` -> the
+- :class:`EnvelopeItem` (pen): ``set_columns(t, lo, hi)`` -> (lowest, highest); ``getData()`` -> the
   zigzag (x, y) it stands for.
 """
 
@@ -46,22 +46,31 @@ class EnvelopeItem(pg.GraphicsObject):
         self._rect = QtCore.QRectF()
         self._bounds = None  # _rect with the pen's pixel margin, at the present scale
 
-    def set_columns(self, t: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> None:
-        """Columns at times ``t`` (increasing) with their ``lo`` and ``hi`` (NaN: no data)."""
+    def set_columns(self, t: np.ndarray, lo: np.ndarray, hi: np.ndarray,
+                    ok: np.ndarray | None = None) -> tuple[float, float] | None:
+        """Columns at times ``t`` (increasing) with their ``lo`` and ``hi`` (NaN: no data;
+        ``ok``: where both are finite, if the caller has it).  Returns the band's
+        (lowest, highest) value, None if it is empty."""
         self.prepareGeometryChange()
         self._bounds = None
         self._t, self._lo, self._hi = t, lo, hi
         self._polygons = []
-        ok = np.isfinite(lo) & np.isfinite(hi)
-        if not ok.any():
+        if ok is None:
+            ok = np.isfinite(lo) & np.isfinite(hi)
+        whole = bool(ok.all())
+        if not len(t) or (not whole and not ok.any()):
             self._rect = QtCore.QRectF()
             self.update()
-            return
-        if ok.all():
+            return None
+        if whole:
             runs = [(0, len(t))]
+            y0, y1 = float(lo.min()), float(hi.max())
+            x0, x1 = float(t[0]), float(t[-1])
         else:
             edges = np.flatnonzero(np.diff(np.r_[0, ok.astype(np.int8), 0]))
             runs = list(zip(edges[0::2], edges[1::2]))
+            y0, y1 = float(np.min(lo[ok])), float(np.max(hi[ok]))
+            x0, x1 = float(t[runs[0][0]]), float(t[runs[-1][1] - 1])
         for a, b in runs:
             n = b - a
             poly = fn.create_qpolygonf(2 * n)
@@ -71,10 +80,9 @@ class EnvelopeItem(pg.GraphicsObject):
             v[n:, 0] = t[a:b][::-1]
             v[n:, 1] = lo[a:b][::-1]
             self._polygons.append(poly)
-        y0, y1 = float(np.min(lo[ok])), float(np.max(hi[ok]))
-        x0, x1 = float(t[ok][0]), float(t[ok][-1])
         self._rect = QtCore.QRectF(x0, y0, x1 - x0, y1 - y0)
         self.update()
+        return y0, y1
 
     def getData(self) -> tuple[np.ndarray, np.ndarray]:  # noqa: N802 (pyqtgraph name)
         """The zigzag this band stands for: x (2m,), y (2m,) = min, max of each column."""
@@ -87,7 +95,9 @@ class EnvelopeItem(pg.GraphicsObject):
             px, py = self.pixelVectors()  # the pen reaches about a pixel beyond the data
             dx = 2 * abs(px.x()) if px is not None else 0.0
             dy = 2 * abs(py.y()) if py is not None else 0.0
-            self._bounds = self._rect.adjusted(-dx, -dy, dx, dy)
+            bounds = self._rect.adjusted(-dx, -dy, dx, dy)
+            view = self.viewRect()  # nothing outside the view shows: keep the axes beside
+            self._bounds = bounds.intersected(view) if view is not None else bounds  # it clean
         return QtCore.QRectF(self._bounds)
 
     def viewTransformChanged(self):  # noqa: N802 (pyqtgraph name)

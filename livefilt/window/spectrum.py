@@ -38,16 +38,23 @@ def welch_db(x: np.ndarray, rate_hz: float) -> tuple[np.ndarray, np.ndarray]:
     nper = max(64, min(nper, MAX_SEGMENT, x.shape[-1]))
     win = _hann(nper)
     seg = sliding_window_view(np.asarray(x, np.float32), nper, axis=-1)[..., ::nper - nper // 2, :]
-    seg = seg - seg.mean(axis=-1, keepdims=True)
-    spec = fft.rfft(seg * win, axis=-1)
-    p = (spec.real ** 2 + spec.imag ** 2).mean(axis=-2)
-    p *= 1.0 / (rate_hz * float(np.dot(win, win)))
+    # the segments demeaned and windowed in one reused buffer: fresh 2 MB
+    # temporaries at every estimate cost more (page faults) than the arithmetic
+    buf = _workspace(seg.shape)
+    np.subtract(seg, seg.mean(axis=-1, keepdims=True, dtype=np.float32), out=buf)
+    buf *= win
+    spec = fft.rfft(buf, axis=-1, overwrite_x=True)
+    v = spec.view(np.float32)  # re, im interleaved: |X|^2 summed over the segments
+    p = np.einsum("...sk,...sk->...k", v, v)
+    p = p[..., 0::2] + p[..., 1::2]
+    p *= 1.0 / (seg.shape[-2] * rate_hz * float(np.dot(win, win)))
     p[..., 1:nper - nper // 2] *= 2  # one-sided: every bin but DC and (even nper) Nyquist
     with np.errstate(divide="ignore"):
         return np.fft.rfftfreq(nper, 1.0 / rate_hz), 10 * np.log10(p)
 
 
 _HANN: dict = {}
+_WORK: dict = {}
 
 
 def _hann(n: int) -> np.ndarray:
@@ -56,19 +63,37 @@ def _hann(n: int) -> np.ndarray:
     return _HANN[n]
 
 
+def _workspace(shape: tuple) -> np.ndarray:
+    if _WORK.get("shape") != shape:
+        _WORK.update(shape=shape, buf=np.empty(shape, np.float32))
+    return _WORK["buf"]
+
+
 def column_minmax(x: np.ndarray, y: np.ndarray, columns: int) -> tuple[np.ndarray, np.ndarray]:
     """Reduce a curve sampled at increasing ``x`` to (min, max) pairs per
     ``columns`` equal steps of x (a step holding one point keeps it once)."""
     if len(x) <= 2 * columns:
         return x, y
-    edges = np.linspace(x[0], x[-1], columns + 1)[:-1]
-    starts = np.unique(np.searchsorted(x, edges))
-    lo = np.fmin.reduceat(y, starts)
-    hi = np.fmax.reduceat(y, starts)
-    xs = np.repeat(x[starts], 2)
+    xs, starts = _column_starts(x, columns)
     ys = np.empty(2 * len(starts), y.dtype)
-    ys[0::2], ys[1::2] = lo, hi
+    ys[0::2] = np.fmin.reduceat(y, starts)
+    ys[1::2] = np.fmax.reduceat(y, starts)
     return xs, ys
+
+
+_STARTS: dict = {}
+
+
+def _column_starts(x: np.ndarray, columns: int) -> tuple[np.ndarray, np.ndarray]:
+    """(x of each pair, first index of each column) for the grid ``x``: the
+    same grid comes back at every estimate, so the last answer is kept."""
+    key = (len(x), float(x[0]), float(x[-1]), columns)
+    if _STARTS.get("key") != key:
+        edges = np.linspace(x[0], x[-1], columns + 1)[:-1]
+        starts = np.unique(np.searchsorted(x, edges))
+        _STARTS.update(key=key, value=(np.repeat(x[starts], 2), starts))
+    xs, starts = _STARTS["value"]
+    return xs.copy(), starts
 
 
 class SpectrumPanel(QtWidgets.QWidget):
@@ -112,6 +137,12 @@ class SpectrumPanel(QtWidgets.QWidget):
         p.getAxis("left").setWidth(70)
         p.getAxis("left").enableAutoSIPrefix(False)
         p.disableAutoRange()
+        # as in the strip chart: no antialiasing margin, ticks outside the view, so a
+        # new estimate repaints the view and not the axes with their labels
+        self.plot.setOptimizationFlag(QtWidgets.QGraphicsView.OptimizationFlag.DontAdjustForAntialiasing,
+                                      True)
+        for side in ("left", "bottom", "right"):
+            p.getAxis(side).setStyle(tickLength=5)
         # a second view box for the chains' gain, sharing x, with its own axis
         self.gain_vb = pg.ViewBox()
         p.showAxis("right")
@@ -131,7 +162,11 @@ class SpectrumPanel(QtWidgets.QWidget):
             else:
                 pen = palette.chain_pen(k - len(inputs), 1.0)  # wider pens cost 2x to paint
                 label = f"{names[i]} output"
-            self.curves.append(p.plot(pen=pen, name=label, skipFiniteCheck=True))
+            # a bare curve item: the plot's data item wrapper redoes its bookkeeping
+            # (bounds, display copies) at each estimate, three times the curve's own cost
+            c = pg.PlotCurveItem(pen=pen, name=label, skipFiniteCheck=True)
+            p.addItem(c)
+            self.curves.append(c)
         raw = " and ".join(names[i] for i in inputs)
         outs = ", ".join(line_key(c.opts["pen"], f"after chain {ch.name}")
                          for c, ch in zip(self.curves[len(inputs):], engine.chains))
@@ -144,6 +179,9 @@ class SpectrumPanel(QtWidgets.QWidget):
         for k, _ in enumerate(engine.chains):
             c = pg.PlotCurveItem(pen=palette.chain_pen(k, 2.4))
             c.setOpacity(0.55)
+            # a gain curve changes only with its chain's settings: kept as a picture
+            # of its pixels, not stroked (wide, translucent) again at every estimate
+            c.setCacheMode(QtWidgets.QGraphicsItem.CacheMode.DeviceCoordinateCache)
             self.gain_vb.addItem(c)
             self.gain_curves.append(c)
         self._gain_for = [None] * len(engine.chains)

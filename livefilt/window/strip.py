@@ -1,7 +1,10 @@
 """Scrolling strip chart of the raw input and each chain's output.
 
-The strip shows the last N seconds (1 to 60) on a shared time axis, in
-seconds since acquisition began.  Drawing every sample is far too slow
+The strip shows the last N seconds (1 to 60) on a shared time axis that
+stays put: seconds before now, the newest sample at 0 on the right, and the
+traces roll leftwards under it.  (An axis in seconds since the start would
+move every frame, and redrawing its ticks and labels cost more than drawing
+the traces.)  Drawing every sample is far too slow
 (10 s at 192 kHz is 1.9 M points), so :class:`MinMaxReducer` keeps a ring of
 per-column (min, max) pairs, one column per pixel or so, and reduces only the
 samples that arrived since the last frame; peaks are never hidden.
@@ -19,6 +22,7 @@ import math
 
 import numpy as np
 import pyqtgraph as pg
+from PySide6 import QtWidgets
 
 from livefilt.window import palette
 from livefilt.window.axes import QuickAxis
@@ -112,22 +116,30 @@ class MinMaxReducer:
         else:
             self._pending = np.array(buf, dtype=np.float32)
 
-    def columns(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    def columns(self, since: int | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """t (m,) in seconds, lo and hi (n_streams, m): each column's min and max
-        in time order, the partial column last; NaN where nothing arrived."""
-        if self.newest is None and not self._pending.shape[1]:
+        in time order, the partial column last; NaN where nothing arrived.
+        ``since``: the first column number wanted (None: the oldest held)."""
+        n_part = 1 if self._pending.shape[1] else 0
+        if self.newest is None and not n_part:
             empty = np.zeros((self.n_streams, 0), np.float32)
             return np.zeros(0), empty, empty
         newest = self.newest if self.newest is not None else self.oldest - 1
-        first = max(self.oldest, newest - self.n_cols + 1)
-        cols = np.arange(first, newest + 1)
-        pos = cols % self.n_cols
-        lo, hi = self.lo[:, pos], self.hi[:, pos]
-        if self._pending.shape[1]:
-            cols = np.append(cols, self._pending_start // self.spc)
-            lo = np.concatenate([lo, self._pending.min(axis=1)[:, None]], axis=1)
-            hi = np.concatenate([hi, self._pending.max(axis=1)[:, None]], axis=1)
-        return cols * (self.spc / self.rate_hz), lo, hi
+        first = max(self.oldest, newest - self.n_cols + 1, since if since is not None else self.oldest)
+        n = max(0, newest - first + 1)
+        lo = np.empty((self.n_streams, n + n_part), np.float32)
+        hi = np.empty_like(lo)
+        p0 = first % self.n_cols
+        k = min(n, self.n_cols - p0)  # the ring read as (at most) two runs
+        lo[:, :k], hi[:, :k] = self.lo[:, p0:p0 + k], self.hi[:, p0:p0 + k]
+        lo[:, k:n], hi[:, k:n] = self.lo[:, :n - k], self.hi[:, :n - k]
+        cols = np.arange(first, first + n + n_part, dtype=np.float64)
+        if n_part:
+            cols[-1] = self._pending_start // self.spc
+            self._pending.min(axis=1, out=lo[:, -1])
+            self._pending.max(axis=1, out=hi[:, -1])
+        cols *= self.spc / self.rate_hz
+        return cols, lo, hi
 
     def arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """x (2m,) in seconds and y (n_streams, 2m): :meth:`columns` as a zigzag
@@ -183,6 +195,9 @@ class StripChart(pg.GraphicsLayoutWidget):
         self.streams = list(inputs) + [i for i, _ in chains]
         self.seconds = float(seconds)
         self.ci.setSpacing(0)
+        # the traces are drawn without antialiasing: no 2-pixel margin around each
+        # changed area, which reached the axes beside the views and repainted them
+        self.setOptimizationFlag(QtWidgets.QGraphicsView.OptimizationFlag.DontAdjustForAntialiasing, True)
         names = tap.names
         self.plots, self.curves = [], []
         # short axis titles (three plots share the height); the window's caption says the rest
@@ -200,6 +215,9 @@ class StripChart(pg.GraphicsLayoutWidget):
                 # no units on these axes, so no prefix ever shows; left on, each axis would
                 # rewrite its label's HTML on every range change (every frame, hidden ones too)
                 p.getAxis(side).enableAutoSIPrefix(False)
+                # ticks outside the view: an axis whose ticks reach into the view
+                # overlaps it, and Qt repaints it (labels and all) every frame the traces move
+                p.getAxis(side).setStyle(tickLength=5)
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
@@ -209,13 +227,14 @@ class StripChart(pg.GraphicsLayoutWidget):
                 p.addItem(c)
                 self.curves.append(c)
             self.plots.append(p)
-        self.plots[-1].setLabel("bottom", "time since start (s)")
+        self.plots[-1].setLabel("bottom", "time before now (s)")
         self._curve_plot = [p for p, (_, _, st) in zip(self.plots, rows) for _ in st]
         self._markers: list[tuple[float, list]] = []
         self.reducer: MinMaxReducer | None = None
         self._cursor = 0
         self.drawn_index = 0  # sample index one past the newest sample drawn
-        self.window = (0.0, self.seconds)  # time span shown, seconds
+        self.window = (0.0, self.seconds)  # time span shown, seconds since the start
+        self._span = None  # the x range set on the plots, (-seconds, 0)
 
     # -- public ---------------------------------------------------------
     def set_seconds(self, seconds: float) -> None:
@@ -237,36 +256,43 @@ class StripChart(pg.GraphicsLayoutWidget):
         if data.shape[1]:
             self._cursor = start + data.shape[1]
             r.push(start, data[self.streams])
-        t, lo, hi = r.columns()
         t_end = r.end_index / tap.rate_hz
         t0 = max(0.0, t_end - self.seconds)
-        shown = t >= t0 - r.spc / tap.rate_hz
-        t, lo, hi = t[shown], lo[:, shown], hi[:, shown]
-        for k, c in enumerate(self.curves):
-            c.set_columns(t, lo[k], hi[k])
+        # the columns from one before the left edge (the band reaches the edge)
+        t, lo, hi = r.columns(since=math.ceil(t0 * tap.rate_hz / r.spc) - 1)
+        t -= t_end  # seconds before now (<= 0)
+        ok = np.isfinite(lo)
+        ok &= np.isfinite(hi)
         ranges: dict = {}
-        for k, p in enumerate(self._curve_plot):
-            if len(t) and np.isfinite(lo[k]).any():
-                a0, b0 = float(np.nanmin(lo[k])), float(np.nanmax(hi[k]))
-                a, b = ranges.get(id(p), (a0, b0))
-                ranges[id(p)] = (min(a, a0), max(b, b0))
+        for k, (c, p) in enumerate(zip(self.curves, self._curve_plot)):
+            extent = c.set_columns(t, lo[k], hi[k], ok[k])
+            if extent is not None:
+                a, b = ranges.get(id(p), extent)
+                ranges[id(p)] = (min(a, extent[0]), max(b, extent[1]))
         for p in self.plots:
             if id(p) in ranges:
                 fit_range(p, *ranges[id(p)])
         self.window = (t0, max(t_end, self.seconds))
-        self.plots[0].setXRange(*self.window, padding=0)
+        if self._span != (-self.seconds, 0.0):  # only when the strip length changes
+            self._span = (-self.seconds, 0.0)
+            self.plots[0].setXRange(*self._span, padding=0)
         for p in self.plots:
             # move the views now: left to the paint (pyqtgraph's default), the move
             # dirties every item again and Qt paints the strip a second time each frame
             p.vb.updateMatrix()
+        for time_s, lines in self._markers:
+            for _, ln in lines:
+                ln.setValue(time_s - t_end)
         self.drawn_index = r.end_index
-        self._prune_markers(t_end - 60.0)
+        self._prune_markers(t_end - self.seconds - 1.0)
 
     def add_marker(self, time_s: float, label: str) -> None:
-        """Vertical line at ``time_s`` on every plot, labelled on the top one."""
+        """Vertical line at ``time_s`` (seconds since the start) on every plot,
+        labelled on the top one; it rolls left with the traces."""
         lines = []
+        t_end = self.drawn_index / self.tap.rate_hz
         for p in self.plots:
-            ln = pg.InfiniteLine(time_s, angle=90, pen=palette.mark_pen("marker"),
+            ln = pg.InfiniteLine(time_s - t_end, angle=90, pen=palette.mark_pen("marker"),
                                  label=label if p is self.plots[0] else None,
                                  labelOpts={"position": 0.9 - 0.15 * (len(self._markers) % 4),
                                             "color": palette.MARKER})
