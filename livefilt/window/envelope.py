@@ -96,8 +96,8 @@ class EnvelopeItem(pg.GraphicsObject):
             dx = 2 * abs(px.x()) if px is not None else 0.0
             dy = 2 * abs(py.y()) if py is not None else 0.0
             bounds = self._rect.adjusted(-dx, -dy, dx, dy)
-            view = self.viewRect()  # nothing outside the view shows: keep the axes beside
-            self._bounds = bounds.intersected(view) if view is not None else bounds  # it clean
+            vb = self.getViewBox()  # nothing outside the view shows: keep the axes beside it
+            self._bounds = bounds.intersected(vb.viewRect()) if vb is not None else bounds  # clean
         return QtCore.QRectF(self._bounds)
 
     def viewTransformChanged(self):  # noqa: N802 (pyqtgraph name)

@@ -164,7 +164,7 @@ class SpectrumPanel(QtWidgets.QWidget):
                 label = f"{names[i]} output"
             # a bare curve item: the plot's data item wrapper redoes its bookkeeping
             # (bounds, display copies) at each estimate, three times the curve's own cost
-            c = pg.PlotCurveItem(pen=pen, name=label, skipFiniteCheck=True)
+            c = _ViewCurve(pen=pen, name=label, skipFiniteCheck=True)
             p.addItem(c)
             self.curves.append(c)
         raw = " and ".join(names[i] for i in inputs)
@@ -283,6 +283,18 @@ class SpectrumPanel(QtWidgets.QWidget):
     def _sync_views(self) -> None:
         self.gain_vb.setGeometry(self.p.vb.sceneBoundingRect())
         self.gain_vb.linkedViewChanged(self.p.vb, self.gain_vb.XAxis)
+
+
+class _ViewCurve(pg.PlotCurveItem):
+    """A curve whose bounds stop at its view: the parts it draws outside (the
+    floor of empty bins far below, the pen's margin) are clipped away anyway,
+    and left in its bounds they make Qt repaint the axes around the view at
+    every estimate."""
+
+    def boundingRect(self):  # noqa: N802 (Qt name)
+        r = super().boundingRect()
+        vb = self.getViewBox()  # the range it was set to (the view's own transform may lag)
+        return r.intersected(vb.viewRect()) if vb is not None else r
 
 
 def line_key(pen, name: str) -> str:
