@@ -172,6 +172,27 @@ def test_window_opens_and_plots_receive_data(win, qtbot, artifacts):
     win.show_room("range")
 
 
+def test_strip_axis_stays_put_and_traces_and_marks_roll(win, qtbot):
+    # the strip's time axis reads seconds before now (0 at the right) and does not move;
+    # the newest column sits at 0 and a distance mark at (its time - now)
+    win.show_room("signals")
+    strip = win.strip
+    qtbot.waitUntil(lambda: strip.drawn_index > FS * 1.0, timeout=8000)
+    strip.add_marker(strip.drawn_index / FS - 0.5, "pot")
+    ranges = []
+    for _ in range(3):
+        before = strip.drawn_index
+        qtbot.waitUntil(lambda: strip.drawn_index > before, timeout=3000)
+        ranges.append(tuple(strip.plots[0].vb.viewRange()[0]))
+        x, _ = strip.curves[0].getData()
+        assert -1.0 / 30 < x[-1] <= 0.0  # the newest column: at most one frame old
+        t_mark, lines = strip._markers[-1]
+        assert lines[0][1].value() == pytest.approx(t_mark - strip.drawn_index / FS)
+    assert all(r == pytest.approx((-strip.seconds, 0.0)) for r in ranges)
+    assert strip.plots[-1].getAxis("bottom").labelText == "time before now (s)"
+    win.show_room("range")
+
+
 def test_cutoff_edit_changes_running_chain(win, qtbot, artifacts):
     win.show_room("chains")
     chain = win.engine.chains[0]
