@@ -639,12 +639,43 @@ class LockIn(_Detector):
                                            first, self.output_every, rows, self._scratch())
         if m == 0:
             return _NO_ROWS
+        if locked is None and self.tracker is None:
+            return self._readout_compiled(start_index + first, rows[0, :m], rows[1, :m])
         if locked is not None:
             at = slice(first, n, self.output_every)
             ref_hz, locked = ref_hz[at], locked[at]
             if isinstance(why, np.ndarray):
                 why = why[at]
         return self._readout(start_index + first, rows[0, :m], rows[1, :m], ref_hz, locked, why)
+
+    def _readout_compiled(self, first_index: int, i_rows, q_rows) -> np.ndarray:
+        """:meth:`_readout` on an internal reference in one compiled pass
+        (``kernels.lockin_readout``: the same operations in the same order,
+        the noise window's state updated in place); no GIL held meanwhile."""
+        m = i_rows.shape[0]
+        rows = np.empty(m, READING_DTYPE)
+        every = self.output_every
+        k = self._settling(np.array([first_index, first_index + (m - 1) * every]))
+        if k:  # rows before the low-pass settles: the count from the progression
+            d = self._quiet_until - first_index
+            k = 0 if d <= 0 else min(m, -(-d // every))
+        st, tb = self.stats, self.tables
+        count = self._work.get("count")
+        if count is None:
+            count = self._work["count"] = np.zeros(1, np.int64)
+        count[0] = st.count
+        state = self._work.get("state")
+        if state is None:
+            state = self._work["state"] = np.zeros(3)
+        state[0], state[1], state[2] = self._last_z.real, self._last_z.imag, self._phi
+        self._kern.lockin_readout(rows, int(first_index), int(every), i_rows, q_rows, int(k), state,
+                                  st.ring, st.shift, st.s1, st.s2, count, tb.factor, tb.dof,
+                                  tb.n_mean, self.fs / every / (2.0 * math.pi),
+                                  float(self.reference.frequency_hz), self.follow_hz, MIN_DOF,
+                                  BIAS_SNR_DB)
+        st.count = int(count[0])
+        self._last_z, self._phi = complex(state[0], state[1]), float(state[2])
+        return rows
 
     def _process_exact(self, x, start_index, cycles, ref_hz, locked, why=None) -> np.ndarray:
         """The straightforward full-rate path: numpy mixer, scipy lfilter sections."""

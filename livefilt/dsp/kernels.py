@@ -27,6 +27,11 @@ API map
   - ``pll_block(x, state, coef, cycles, hz, lock)``: the tracking
     reference's phase-locked loop, sample by sample; returns the number of
     samples done (fewer when lock is lost, so the caller re-acquires there).
+  - ``lockin_readout(rows, first_index, every, i_rows, q_rows, k, state, ring,
+    shift, s1, s2, count, factor, dof, n_mean, per_row, ref_hz, follow_hz,
+    min_dof, bias_db)``: the lock-in's read-out rows on an internal
+    reference with its noise window (``LockIn._readout`` and
+    ``WindowStats.update`` in one pass, the same operations in the same order).
 
 Why a per-sample loop
 ---------------------
@@ -369,6 +374,143 @@ def pll_block(x, state, coef, cycles, hz, lock):
 
 # -- private helpers --------------------------------------------------------
 @_jit
+def lockin_readout(rows, first_index, every, i_rows, q_rows, k, state, ring, shift, s1, s2,
+                   count, factor, dof, n_mean, per_row, ref_hz, follow_hz, min_dof, bias_db):
+    # The lock-in read-out on an internal reference, row by row: the numpy
+    # LockIn._readout and WindowStats.update with the same operations in the
+    # same order (sums sequential, as numpy's cumsum and its reductions across
+    # rows are), so the rows agree to rounding.  state = (last I, last Q,
+    # unwrapped phase); count[0] = rows the window has seen; ring, shift, s1,
+    # s2: the window's (see WindowStats); rows k.. enter the window.
+    m = i_rows.shape[0]
+    n_win = ring.shape[0]
+    n_ch = ring.shape[1]
+    nan = np.nan
+    to_deg = 180.0 / math.pi
+    db_per = 20.0 / math.log(10.0)
+    sqrt_half = math.sqrt(0.5)
+    v = np.empty(n_ch)
+    mean = np.empty(n_ch)
+    var = np.empty(n_ch)
+    pr, pq = state[0], state[1]
+    csum = 0.0
+    for j in range(m):
+        r = rows[j]
+        i = i_rows[j]
+        q = q_rows[j]
+        idx = first_index + j * every
+        r.index = idx
+        r.in_phase = i
+        r.quadrature = q
+        amp = math.hypot(i, q)
+        r.amplitude = amp
+        deg = math.atan2(q, i) * to_deg
+        r.phase_deg = deg + 360.0 if deg <= -180.0 else deg
+        # the row-to-row increment: angle(z * conj(previous z)), numpy's product
+        br, bi = pr, -pq
+        inc = math.atan2(i * bi + q * br, i * br - q * bi)
+        csum += inc
+        phi = state[2] + csum
+        pr, pq = i, q
+        noise = nan
+        noise_u = nan
+        vec = nan
+        off = nan
+        off_u = nan
+        if j >= k:
+            t = float(idx // every)
+            v[0] = i
+            v[1] = q
+            v[2] = (i + q) * sqrt_half
+            v[3] = t
+            v[4] = phi
+            v[5] = (t + phi) * sqrt_half
+            v[6] = inc
+            c0 = count[0]
+            if c0 == 0:
+                for c in range(n_ch):
+                    shift[c] = v[c]
+            slot = c0 % n_win
+            for c in range(n_ch):
+                new = v[c] - shift[c]
+                old = ring[slot, c] - shift[c] if c0 >= n_win else 0.0
+                s1[c] = s1[c] + (new - old)
+                s2[c] = s2[c] + (new * new - old * old)
+                ring[slot, c] = v[c]
+            count[0] = c0 + 1
+            cnt = min(c0 + 1, n_win)
+            if (c0 + 1) % n_win == 0:  # the sums afresh from the window
+                for c in range(n_ch):
+                    acc = 0.0
+                    for w in range(n_win):
+                        acc += ring[w, c]
+                    shift[c] = acc / n_win
+                for c in range(n_ch):
+                    a1 = 0.0
+                    a2 = 0.0
+                    for w in range(n_win):
+                        d = ring[w, c] - shift[c]
+                        a1 += d
+                        a2 += d * d
+                    s1[c] = a1
+                    s2[c] = a2
+            fc = float(cnt)
+            for c in range(n_ch):
+                mean[c] = shift[c] + s1[c] / fc
+                if cnt >= 2:
+                    x = (s2[c] - s1[c] * s1[c] / fc) / (fc - 1.0)
+                    var[c] = 0.0 if x < 0.0 else x
+                else:
+                    var[c] = nan
+            mi, mq, vi, vq = mean[0], mean[1], var[0], var[1]
+            cov = var[2] - 0.5 * (vi + vq)
+            m2 = mi * mi + mq * mq
+            if m2 > 0:
+                across = (mq * mq * vi - 2 * mi * mq * cov + mi * mi * vq) / m2
+            else:
+                across = 0.5 * (vi + vq)
+            x = across * factor[cnt]
+            if x < 0.0:
+                x = 0.0
+            noise = math.sqrt(x) if dof[cnt] >= min_dof else nan
+            if noise == noise:
+                noise_u = 1.0 / math.sqrt(2.0 * dof[cnt])
+            vec = math.sqrt(m2)
+            vt, vp = var[3], var[4]
+            cov_tp = var[5] - 0.5 * (vt + vp)
+            slope = cov_tp / vt
+            resid = vp - cov_tp * slope
+            if resid < 0.0:
+                resid = 0.0
+            off = slope * per_row
+            u_line = math.sqrt(resid * 12.0 / n_mean[cnt]) / cnt
+            u_walk = math.sqrt(1.2 * var[6] / cnt)
+            if n_mean[cnt] >= 10 and resid < 0.25:
+                if u_line != u_line or u_walk > u_line:  # fmax: the larger, NaN ignored
+                    u_line = u_walk
+                off_u = u_line * per_row
+        r.noise = noise
+        r.noise_u = noise_u
+        r.vector_amplitude = vec
+        r.offset_hz = off
+        r.offset_u_hz = off_u
+        r.snr_db = 20.0 * math.log10(amp / noise)
+        rel = noise / amp
+        r.snr_u_db = db_per * math.sqrt(noise_u * noise_u + rel * rel)
+        x = amp * amp - 2.0 * noise * noise
+        r.amplitude_corrected = math.sqrt(0.0 if x < 0.0 else x)
+        r.biased = not (20.0 * math.log10(vec / noise) >= bias_db)
+        r.ref_hz = ref_hz
+        drifting = abs(off) - 2.0 * off_u > follow_hz
+        r.locked = not drifting
+        r.lock_reason = 1 if drifting else 0
+    if m:
+        state[0], state[1] = pr, pq
+        state[2] = state[2] + csum
+    return m
+
+
+@_jit
 def _cascade(sos, zi, first, end, buf, n):
     # Sections first..end-1 in place on buf[:n].  Four sections at a time
     # run skewed (section j of the group on sample k - j), so their four state
@@ -610,6 +752,7 @@ class _Kernels:
         self.mix_cycles_rows = mix_cycles_rows
         self.square_rows = square_rows
         self.pll_block = pll_block
+        self.lockin_readout = lockin_readout
 
 
 def _build() -> _Kernels:

@@ -139,6 +139,41 @@ def test_lockin_compiled_equals_straightforward(measured):
                                    equal_nan=True)
 
 
+@pytest.mark.parametrize("offset_hz", [0.0, 3.0])
+def test_compiled_readout_equals_numpy_readout(offset_hz):
+    # reference: LockIn._readout (numpy, the read-out of the straightforward path) fed
+    # the same I and Q rows: every column, through the settling rows, several noise
+    # windows (the sums recomputed at each window boundary) and, with the signal
+    # 3 Hz off the reference, the phase slope, its uncertainty and the drift flag
+    fs, every = 48000.0, 48
+    spec = DetectorSpec.from_mapping({"time_constant_s": 0.01, "slope_db_oct": 12,
+                                      "noise_window_s": 0.5}, fs)
+    ref = ReferenceSpec.from_mapping({"frequency_hz": 1370.0}, fs, 1)
+    a, b = make_detector(spec, ref, fs, every), make_detector(spec, ref, fs, every)
+    rng = np.random.default_rng(1057)
+    m = 3000  # rows; the window holds 500
+    t = np.arange(m) * every / fs
+    z = 0.3 * np.exp(2j * np.pi * offset_hz * t + 0.4j) + rng.normal(0, 0.02, m) + 1j * rng.normal(0, 0.02, m)
+    z[:30] *= np.linspace(0, 1, 30)  # a rise from zero, as at a start
+    got, want = [], []
+    for lo, hi in ((0, 7), (7, 333), (333, 334), (334, 2001), (2001, 3000)):
+        i, q = z.real[lo:hi].copy(), z.imag[lo:hi].copy()
+        got.append(a._readout_compiled(lo * every, i, q))
+        want.append(b._readout(lo * every, i, q, 1370.0, None))
+    got, want = np.concatenate(got), np.concatenate(want)
+    assert np.isnan(want["noise"][:5]).all() and np.isfinite(want["noise"][-500:]).all()
+    for name in want.dtype.names:
+        if want.dtype[name].kind == "f":
+            # the phase slope is a difference of window sums of row numbers and phases
+            # in the thousands: its rounding is absolute (1e-13 Hz seen), not relative
+            atol = 1e-12 if name.startswith("offset") else 1e-15
+            np.testing.assert_allclose(got[name], want[name], rtol=1e-12, atol=atol,
+                                       equal_nan=True, err_msg=name)
+        else:
+            np.testing.assert_array_equal(got[name], want[name], err_msg=name)
+    assert (~want["locked"]).any() == (offset_hz > 0)  # 3 Hz off reads as drift, in places
+
+
 def test_rms_compiled_equals_straightforward():
     spec = DetectorSpec.from_mapping({"type": "rms", "time_constant_s": 0.002,
                                       "noise_window_s": 0.05}, FS)
