@@ -569,6 +569,7 @@ class LockIn(_Detector):
         if self._kern is not None and not reference.measured and not reference.track:
             # built here, not at the first block: its weights take a moment
             self._lp = RowLowpass(*self._coef, self.n_sections, 2, output_every)
+            _warm_readout(self._kern)
 
     def reset(self) -> None:
         super().reset()
@@ -1219,6 +1220,22 @@ def _section_coefficients(fs: float, tau: float) -> tuple[np.ndarray, np.ndarray
     else:
         b0 = (x + math.expm1(-x)) / x
     return np.array([b0, one_minus_a - b0]), np.array([1.0, -math.exp(-x)])
+
+
+_WARM: list = []
+
+
+def _warm_readout(kern) -> None:
+    """Compile (or load) the read-out kernel once, with the argument types of
+    the real calls, before any engine starts: compiled at its first block
+    instead, it stalled a live source for seconds on a fresh install."""
+    if _WARM:
+        return
+    z = np.zeros(0)
+    kern.lockin_readout(np.empty(0, READING_DTYPE), 0, 1, z, z, 0, np.zeros(3), np.zeros((2, 7)),
+                        np.zeros(7), np.zeros(7), np.zeros(7), np.zeros(1, np.int64), z, z, z,
+                        1.0, 1.0, 1.0, MIN_DOF, BIAS_SNR_DB)
+    _WARM.append(True)
 
 
 def _wrap_deg(deg: np.ndarray) -> np.ndarray:

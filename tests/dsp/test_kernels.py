@@ -309,3 +309,13 @@ def test_row_lowpass_steps_the_same_without_the_compiled_stepper():
         got.append(np.concatenate(rows, axis=1))
     assert got[0].shape == (2, 21)
     np.testing.assert_allclose(got[1], got[0], rtol=1e-13, atol=1e-15)
+
+
+def test_readout_kernel_is_ready_before_the_first_block():
+    # warmed with the real calls' argument types when the lock-in is built: a
+    # compile at the first block stalled a live source (frames dropped) on a fresh install
+    engine = Engine(demo_config())
+    before = len(kernels.lockin_readout.signatures)
+    assert before >= 1
+    engine.run(2.0)
+    assert len(kernels.lockin_readout.signatures) == before
