@@ -72,6 +72,7 @@ or None.  ``RmsDetector``: the same with ``zi`` (n, 1, 1) on ``x**2`` and
 
 from __future__ import annotations
 
+import functools
 import logging
 import math
 from dataclasses import dataclass
@@ -428,19 +429,21 @@ class _Detector:
         self._stats = None
         self._quiet_until: int | None = None
 
-    def _settling(self, index: np.ndarray) -> int:
-        """How many of the rows at ``index`` fall while the output low-pass is
-        still settling after a start (99.9 %, REFERENCES row 3c).
+    def _settling(self, first_index: int, m: int) -> int:
+        """How many of the ``m`` rows from sample ``first_index`` (one every
+        ``output_every`` samples) fall while the output low-pass is still
+        settling after a start (99.9 %, REFERENCES row 3c).
 
         Their noise and SNR read NaN and they stay out of the noise window:
         the output's rise from zero is the detector's own transient, not noise.
         Counted from the first row's sample index, so any block split agrees.
         """
+        if not m:
+            return 0
         if self._quiet_until is None:
-            if not len(index):
-                return 0
-            self._quiet_until = int(index[0]) + int(np.ceil(self.settling_s(0.999) * self.fs))
-        return int(np.searchsorted(index, self._quiet_until))
+            self._quiet_until = int(first_index) + int(np.ceil(self.settling_s(0.999) * self.fs))
+        d = self._quiet_until - int(first_index)
+        return 0 if d <= 0 else min(m, -(-d // self.output_every))  # rows before it
 
     def note_gap(self, frames: int) -> None:
         """Samples were lost before the next block; the filter state is kept."""
@@ -640,7 +643,7 @@ class LockIn(_Detector):
                                            first, self.output_every, rows, self._scratch())
         if m == 0:
             return _NO_ROWS
-        if locked is None and self.tracker is None:
+        if self.tracker is None:  # an internal reference
             return self._readout_compiled(start_index + first, rows[0, :m], rows[1, :m])
         if locked is not None:
             at = slice(first, n, self.output_every)
@@ -656,18 +659,13 @@ class LockIn(_Detector):
         m = i_rows.shape[0]
         rows = np.empty(m, READING_DTYPE)
         every = self.output_every
-        k = self._settling(np.array([first_index, first_index + (m - 1) * every]))
-        if k:  # rows before the low-pass settles: the count from the progression
-            d = self._quiet_until - first_index
-            k = 0 if d <= 0 else min(m, -(-d // every))
+        k = self._settling(first_index, m)
         st, tb = self.stats, self.tables
         count = self._work.get("count")
         if count is None:
             count = self._work["count"] = np.zeros(1, np.int64)
         count[0] = st.count
-        state = self._work.get("state")
-        if state is None:
-            state = self._work["state"] = np.zeros(3)
+        state = self._buffer("state", (3,))
         state[0], state[1], state[2] = self._last_z.real, self._last_z.imag, self._phi
         self._kern.lockin_readout(rows, int(first_index), int(every), i_rows, q_rows, int(k), state,
                                   st.ring, st.shift, st.s1, st.s2, count, tb.factor, tb.dof,
@@ -728,7 +726,7 @@ class LockIn(_Detector):
         self._last_z, self._phi = complex(z[-1]), float(phi[-1])
         for name in ("noise", "noise_u", "vector_amplitude", "offset_hz", "offset_u_hz"):
             rows[name] = np.nan
-        k = self._settling(index)
+        k = self._settling(first_index, m)
         if k < m:
             # Noise across the signal's direction: the variance of (I, Q) along
             # the unit vector perpendicular to the window's mean (I, Q).  Slow
@@ -956,7 +954,7 @@ class RmsDetector(_Detector):
         rows["phase_deg"] = np.nan
         for name in ("noise", "noise_u", "vector_amplitude"):
             rows[name] = np.nan
-        k = self._settling(rows["index"])
+        k = self._settling(first_index, m)
         if k < m:
             mean, var, cnt = self.stats.update(amp[k:, None])
             noise = self._unbiased_noise(var[:, 0], cnt)
@@ -1222,20 +1220,15 @@ def _section_coefficients(fs: float, tau: float) -> tuple[np.ndarray, np.ndarray
     return np.array([b0, one_minus_a - b0]), np.array([1.0, -math.exp(-x)])
 
 
-_WARM: list = []
-
-
+@functools.cache
 def _warm_readout(kern) -> None:
     """Compile (or load) the read-out kernel once, with the argument types of
     the real calls, before any engine starts: compiled at its first block
     instead, it stalled a live source for seconds on a fresh install."""
-    if _WARM:
-        return
     z = np.zeros(0)
     kern.lockin_readout(np.empty(0, READING_DTYPE), 0, 1, z, z, 0, np.zeros(3), np.zeros((2, 7)),
                         np.zeros(7), np.zeros(7), np.zeros(7), np.zeros(1, np.int64), z, z, z,
                         1.0, 1.0, 1.0, MIN_DOF, BIAS_SNR_DB)
-    _WARM.append(True)
 
 
 def _wrap_deg(deg: np.ndarray) -> np.ndarray:
