@@ -25,7 +25,6 @@ import pyqtgraph as pg
 from PySide6 import QtWidgets
 
 from livefilt.window import palette
-from livefilt.window.axes import QuickAxis
 from livefilt.window.envelope import EnvelopeItem, zigzag
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
@@ -205,7 +204,7 @@ class StripChart(pg.GraphicsLayoutWidget):
         rows += [(f"chain {name}", palette.chain_pen(k, 1.0).color(), [i])
                  for k, (i, name) in enumerate(chains)]
         for r, (title, pen, streams) in enumerate(rows):
-            p = self.addPlot(row=r, col=0, axisItems={k: QuickAxis(k) for k in ("left", "bottom")})
+            p = self.addPlot(row=r, col=0)
             p.setLabel("left", f"{title} ({units})", color=pg.mkPen(pen).color().name())
             p.setMenuEnabled(False)
             p.hideButtons()
@@ -213,7 +212,7 @@ class StripChart(pg.GraphicsLayoutWidget):
             p.getAxis("left").setWidth(70)
             for side in ("left", "bottom", "top", "right"):
                 # no units on these axes, so no prefix ever shows; left on, each axis would
-                # rewrite its label's HTML on every range change (every frame, hidden ones too)
+                # rewrite its label's HTML on every range change (hidden ones too)
                 p.getAxis(side).enableAutoSIPrefix(False)
                 # ticks outside the view: an axis whose ticks reach into the view
                 # overlaps it, and Qt repaints it (labels and all) every frame the traces move
@@ -221,7 +220,7 @@ class StripChart(pg.GraphicsLayoutWidget):
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
-                p.hideAxis("bottom")  # a scrolling axis is redrawn every frame: keep only the last
+                p.hideAxis("bottom")  # one time axis, under the last plot
             for _ in streams:  # each envelope a filled band (see .envelope)
                 c = EnvelopeItem(pg.mkPen(pen, width=1))
                 p.addItem(c)
@@ -284,7 +283,7 @@ class StripChart(pg.GraphicsLayoutWidget):
             for _, ln in lines:
                 ln.setValue(time_s - t_end)
         self.drawn_index = r.end_index
-        self._prune_markers(t_end - self.seconds - 1.0)
+        self._prune_markers(t_end - 60.0)  # kept for the longest strip (set_seconds)
 
     def add_marker(self, time_s: float, label: str) -> None:
         """Vertical line at ``time_s`` (seconds since the start) on every plot,
