@@ -53,10 +53,16 @@ __all__ = ["MainWindow", "run_window", "ROOMS"]
 log = logging.getLogger(__name__)
 
 FRAME_MS = 30            # display tick (about 33 fps): the strip chart
-STRENGTH_EVERY = 3       # detector histories, strength plots and verdict every 3rd tick
-SLOW_EVERY = 6           # marks, recording info and status every 6th tick
-SPECTRUM_EVERY = 10      # spectrum every 10th tick (about 3 per second)
-RANGE_EVERY = 16         # range view every 16th tick (about twice a second)
+STRENGTH_EVERY = 3       # detector histories and strength plots every 3rd tick
+# Figures in words change about 4 times a second, as a meter's display does (faster
+# is unreadable); they and the status line refresh on ticks of their own (phases
+# below), as the spectrum does: two panels' repaints in one tick make Qt repaint the
+# whole window between them.
+VERDICT_EVERY = 8        # the verdict sentence and figures every 8th tick, phase 0
+SLOW_EVERY = 6           # marks, recording info and status every 6th tick, phase 3
+SPECTRUM_EVERY = 16      # spectrum every 16th tick (about twice a second: each estimate
+                         # spans the half second since the last), phase 2
+RANGE_EVERY = 16         # range view every 16th tick (about twice a second), phase 4
 TIMELINE_S = 60.0        # the strength time line shows the last minute
 
 #: (key, words) of the rooms, in the order of the switcher
@@ -259,12 +265,13 @@ class MainWindow(QtWidgets.QMainWindow):
                 h.update()
             if room == "range":
                 self.strength.refresh(*self._timeline())
+        if self.frames % VERDICT_EVERY == 0:
             self.verdict.refresh()
-        if room == "signals" and self.frames % SPECTRUM_EVERY == 1:
+        if room == "signals" and self.frames % SPECTRUM_EVERY == 2:
             self.spectrum.refresh()
-        if room == "range" and self.frames % RANGE_EVERY == 0:
+        if room == "range" and self.frames % RANGE_EVERY == 4:
             self.range_view.refresh()  # off screen it waits (show_room brings it up to date)
-        if self.frames % SLOW_EVERY == 0:
+        if self.frames % SLOW_EVERY == 3:
             self.notes.sync()
             self.notes.refresh_age()
             self.record.refresh()

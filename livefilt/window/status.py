@@ -9,6 +9,8 @@ from livefilt.window.labels import fix_size
 
 __all__ = ["StatusLine"]
 
+_ALARM = "color: #b23a30; font-weight: bold;"
+
 
 class StatusLine(QtWidgets.QStatusBar):
     """Refreshed a few times a second from the engine's counters."""
@@ -33,23 +35,30 @@ class StatusLine(QtWidgets.QStatusBar):
         for w in (self.source, self.rate, self.losses, self.input, self.load, self.fps):
             self.addWidget(w)
         self.addPermanentWidget(self.note)
+        self.input.setToolTip("input samples that were NaN or Inf (replaced by the last finite "
+                              "value) or at or beyond full scale (clipping)")
 
     def refresh(self, fps: float) -> None:
         e = self.engine
         st = e.stats
         bad = st.overruns or st.dropped
         self.losses.setText(f"overruns {st.overruns}, dropped {st.dropped} samples")
-        self.losses.setStyleSheet("color: #b23a30; font-weight: bold;" if bad else "")
+        _style(self.losses, _ALARM if bad else "")
         g = e.guard.counts()
         self.input.setText(f"non-finite {g['nonfinite_samples']}, "
                            f"clipped {g['clipped_samples']} samples")
-        self.input.setStyleSheet("color: #b23a30; font-weight: bold;" if any(g.values()) else "")
-        self.input.setToolTip("input samples that were NaN or Inf (replaced by the last finite "
-                              "value) or at or beyond full scale (clipping)")
+        _style(self.input, _ALARM if any(g.values()) else "")
         self.load.setText(f"processing {100 * st.load(e.rate_hz):.1f} % of real time")
         self.fps.setText(f"display {fps:.0f} frames/s")
         if e.error is not None:
             self.note.setText(f"acquisition stopped: {e.error}")
-            self.note.setStyleSheet("color: #b23a30; font-weight: bold;")
+            _style(self.note, _ALARM)
         elif e.finished.is_set():
             self.note.setText("source ended")
+
+
+def _style(label: QtWidgets.QLabel, sheet: str) -> None:
+    """Set ``sheet`` only when it changes: setting a style sheet, even the same
+    one, polishes the label again and repaints the window around it."""
+    if label.styleSheet() != sheet:
+        label.setStyleSheet(sheet)
