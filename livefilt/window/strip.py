@@ -6,8 +6,12 @@ traces roll leftwards under it.  (An axis in seconds since the start would
 move every frame, and redrawing its ticks and labels cost more than drawing
 the traces.)  Drawing every sample is far too slow
 (10 s at 192 kHz is 1.9 M points), so :class:`MinMaxReducer` keeps a ring of
-per-column (min, max) pairs, one column per pixel or so, and reduces only the
-samples that arrived since the last frame; peaks are never hidden.
+per-column (min, max) pairs, one column per pixel of the views, and reduces
+only the samples that arrived since the last frame; peaks are never hidden.
+Each column is a whole number of samples, so the strip holds that many
+pixels' worth of time (within half a sample per pixel of the length asked
+for) and its axis spans exactly that; the bands are images that scroll by
+whole pixels (:mod:`livefilt.window.bands`).
 
 API
 ---
@@ -25,7 +29,7 @@ import pyqtgraph as pg
 from PySide6 import QtWidgets
 
 from livefilt.window import palette
-from livefilt.window.envelope import EnvelopeItem, zigzag
+from livefilt.window.bands import BandImage, zigzag
 
 __all__ = ["MinMaxReducer", "StripChart", "fit_range"]
 
@@ -140,6 +144,12 @@ class MinMaxReducer:
         cols *= self.spc / self.rate_hz
         return cols, lo, hi
 
+    def last_column(self) -> int:
+        """Number of the last column :meth:`columns` returns (the partial one if any)."""
+        if self._pending.shape[1]:
+            return self._pending_start // self.spc
+        return self.newest if self.newest is not None else (self.oldest or 0) - 1
+
     def arrays(self) -> tuple[np.ndarray, np.ndarray]:
         """x (2m,) in seconds and y (n_streams, 2m): :meth:`columns` as a zigzag
         (min, max of each column in turn)."""
@@ -170,10 +180,9 @@ class StripChart(pg.GraphicsLayoutWidget):
     """Input and each chain's output over the last ``seconds``, scrolling.
 
     One plot for the raw input(s), then one per chain, stacked on a shared
-    time axis.  Each chain's plot carries its name and colour; its trace is
-    drawn with a solid pen on purpose: a dashed pen on a dense min/max
-    envelope costs several milliseconds per frame in Qt's raster engine and
-    reads as noise (the strength and spectrum plots use the dashed style).
+    time axis.  Each chain's plot carries its name and colour; its band is
+    solid on purpose: a dashed style on a dense min/max band reads as noise
+    (the strength and spectrum plots use the dashed style).
     Y ranges are set here, with hysteresis, rather than by pyqtgraph's
     auto-range, which repaints every view a second time per frame.
 
@@ -200,40 +209,48 @@ class StripChart(pg.GraphicsLayoutWidget):
         names = tap.names
         self.plots, self.curves = [], []
         # short axis titles (three plots share the height); the window's caption says the rest
-        rows = [(", ".join(names[i] for i in inputs), palette.raw_pen(), inputs)]
-        rows += [(f"chain {name}", palette.chain_pen(k, 1.0).color(), [i])
+        rows = [(", ".join(names[i] for i in inputs), [palette.RAW] * len(inputs), inputs)]
+        rows += [(f"chain {name}", [palette.chain_pen(k, 1.0).color()], [i])
                  for k, (i, name) in enumerate(chains)]
-        for r, (title, pen, streams) in enumerate(rows):
+        self._rows = []  # (first, end) of each plot's streams in self.streams
+        for r, (title, colours, streams) in enumerate(rows):
             p = self.addPlot(row=r, col=0)
-            p.setLabel("left", f"{title} ({units})", color=pg.mkPen(pen).color().name())
+            p.setLabel("left", f"{title} ({units})", color=pg.mkColor(colours[0]).name())
             p.setMenuEnabled(False)
             p.hideButtons()
             p.disableAutoRange()
             p.getAxis("left").setWidth(70)
             for side in ("left", "bottom", "top", "right"):
+                axis = p.getAxis(side)
                 # no units on these axes, so no prefix ever shows; left on, each axis would
                 # rewrite its label's HTML on every range change (hidden ones too)
-                p.getAxis(side).enableAutoSIPrefix(False)
+                axis.enableAutoSIPrefix(False)
                 # ticks outside the view: an axis whose ticks reach into the view
                 # overlaps it, and Qt repaints it (labels and all) every frame the traces move
-                p.getAxis(side).setStyle(tickLength=5)
+                axis.setStyle(tickLength=5)
+                # kept as a picture of its pixels: repainted beside a changing view, an
+                # axis then copies them instead of drawing its ticks and labels again
+                axis.setCacheMode(QtWidgets.QGraphicsItem.CacheMode.DeviceCoordinateCache)
             if r:
                 p.setXLink(self.plots[0])
             if r < len(rows) - 1:
                 p.hideAxis("bottom")  # one time axis, under the last plot
-            for _ in streams:  # each envelope a filled band (see .envelope)
-                c = EnvelopeItem(pg.mkPen(pen, width=1))
-                p.addItem(c)
-                self.curves.append(c)
+            # the view box draws nothing itself (no border): Qt need not call its paint
+            p.vb.setFlag(QtWidgets.QGraphicsItem.GraphicsItemFlag.ItemHasNoContents, True)
+            bands = BandImage(colours, palette.BACKGROUND)  # every stream's band (see .bands)
+            p.addItem(bands, ignoreBounds=True)
+            self.curves.append(bands)
+            first = self._rows[-1][1] if self._rows else 0
+            self._rows.append((first, first + len(streams)))
             self.plots.append(p)
         self.plots[-1].setLabel("bottom", "time before now (s)")
-        self._curve_plot = [p for p, (_, _, st) in zip(self.plots, rows) for _ in st]
         self._markers: list[tuple[float, list]] = []
         self.reducer: MinMaxReducer | None = None
         self._cursor = 0
         self.drawn_index = 0  # sample index one past the newest sample drawn
         self.window = (0.0, self.seconds)  # time span shown, seconds since the start
-        self._span = None  # the x range set on the plots, (-seconds, 0)
+        self._span = None  # the x range set on the plots: (-columns x seconds per column, 0)
+        self._columns = 0  # the views' width in pixels when the reducer was made
 
     # -- public ---------------------------------------------------------
     def set_seconds(self, seconds: float) -> None:
@@ -244,11 +261,17 @@ class StripChart(pg.GraphicsLayoutWidget):
     def refresh(self) -> None:
         """Reduce what arrived since the last frame and redraw."""
         tap = self.tap
-        want_cols = max(200, int(self.plots[0].vb.width()) or 800)
+        width = self._width()
         r = self.reducer
-        if r is None or abs(want_cols - r.n_cols) > 0.25 * r.n_cols:
-            r = self.reducer = MinMaxReducer(len(self.streams), tap.rate_hz, self.seconds, want_cols)
-            self._cursor = max(0, tap.end_index - int(self.seconds * tap.rate_hz))
+        if r is None or width != self._columns:
+            # one column per pixel of the views (the bands scroll by whole pixels): the
+            # strip holds `width` columns of a whole number of samples each, as near
+            # its length as that allows
+            self._columns = width
+            spc = max(1, round(tap.rate_hz * self.seconds / width))
+            r = self.reducer = MinMaxReducer(len(self.streams), tap.rate_hz,
+                                             width * spc / tap.rate_hz, width)
+            self._cursor = max(0, tap.end_index - width * spc)
         start, data = tap.read_since(self._cursor)
         if not data.shape[1] and r.end_index == self.drawn_index and r.newest is not None:
             return  # nothing new: leave every item as it is (no repaint)
@@ -257,28 +280,26 @@ class StripChart(pg.GraphicsLayoutWidget):
             r.push(start, data[self.streams])
         t_end = r.end_index / tap.rate_hz
         t0 = max(0.0, t_end - self.seconds)
-        # the columns from one before the left edge (the band reaches the edge)
-        t, lo, hi = r.columns(since=math.ceil(t0 * tap.rate_hz / r.spc) - 1)
+        last = r.last_column()
+        # the newest `width` columns, the rightmost pixel the one still filling
+        t, lo, hi = r.columns(since=last - width + 1)
         t -= t_end  # seconds before now (<= 0)
         ok = np.isfinite(lo)
         ok &= np.isfinite(hi)
-        ranges: dict = {}
-        for k, (c, p) in enumerate(zip(self.curves, self._curve_plot)):
-            extent = c.set_columns(t, lo[k], hi[k], ok[k])
-            if extent is not None:
-                a, b = ranges.get(id(p), extent)
-                ranges[id(p)] = (min(a, extent[0]), max(b, extent[1]))
-        for p in self.plots:
-            if id(p) in ranges:
-                fit_range(p, *ranges[id(p)])
-        self.window = (t0, max(t_end, self.seconds))
-        if self._span != (-self.seconds, 0.0):  # only when the strip length changes
-            self._span = (-self.seconds, 0.0)
-            self.plots[0].setXRange(*self._span, padding=0)
-        for p in self.plots:
+        span = (-width * r.spc / tap.rate_hz, 0.0)  # as many seconds as the columns hold
+        if self._span != span:  # only when the strip length or the width changes
+            self._span = span
+            self.plots[0].setXRange(*span, padding=0)
+        for p, (a, b) in zip(self.plots, self._rows):
+            good = ok[a:b]
+            if good.any():
+                fit_range(p, lo[a:b][good].min(), hi[a:b][good].max())
             # move the views now: left to the paint (pyqtgraph's default), the move
             # dirties every item again and Qt paints the strip a second time each frame
             p.vb.updateMatrix()
+        for p, bands, (a, b) in zip(self.plots, self.curves, self._rows):
+            bands.set_columns(last - t.shape[0] + 1, t, lo[a:b], hi[a:b], tuple(p.vb.viewRange()[1]))
+        self.window = (t0, max(t_end, self.seconds))
         for time_s, lines in self._markers:
             for _, ln in lines:
                 ln.setValue(time_s - t_end)
@@ -298,6 +319,10 @@ class StripChart(pg.GraphicsLayoutWidget):
             p.addItem(ln, ignoreBounds=True)
             lines.append((p, ln))
         self._markers.append((time_s, lines))
+
+    def _width(self) -> int:
+        """The views' width in pixels (at least 200; the scene is drawn 1:1)."""
+        return max(200, int(round(self.plots[0].vb.width())) or 800)
 
     def _prune_markers(self, before_s: float) -> None:
         while self._markers and self._markers[0][0] < before_s:

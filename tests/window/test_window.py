@@ -188,7 +188,10 @@ def test_strip_axis_stays_put_and_traces_and_marks_roll(win, qtbot):
         assert -1.0 / 30 < x[-1] <= 0.0  # the newest column: at most one frame old
         t_mark, lines = strip._markers[-1]
         assert lines[0][1].value() == pytest.approx(t_mark - strip.drawn_index / FS)
-    assert all(r == pytest.approx((-strip.seconds, 0.0)) for r in ranges)
+    # as many seconds as the strip's columns (one per pixel, whole samples each) hold
+    spc, width = strip.reducer.spc, strip._columns
+    assert all(r == pytest.approx((-width * spc / FS, 0.0)) for r in ranges)
+    assert width * spc / FS == pytest.approx(strip.seconds, rel=0.5 * width / (FS * strip.seconds) + 1e-9)
     assert strip.plots[-1].getAxis("bottom").labelText == "time before now (s)"
     win.show_room("range")
 
