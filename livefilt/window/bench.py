@@ -24,6 +24,7 @@ Used by ``livefilt speed --window``.
 from __future__ import annotations
 
 import collections
+import gc
 import logging
 import os
 import time
@@ -78,6 +79,8 @@ def measure_window(seconds: float = 10, rate_hz: float = 192000, *, block: int =
     strip.paintEvent = paint_event
     engine.start()
     win.show()
+    gc.collect()  # as run_window does
+    gc.freeze()
     result: dict = {}
 
     def begin():

@@ -29,6 +29,7 @@ API
 
 from __future__ import annotations
 
+import gc
 import logging
 import time
 from dataclasses import replace
@@ -400,6 +401,12 @@ def run_window(settings, duration_s: float | None = None, screenshot=None, out=N
         if rec is not None:
             log.info("recording to %s", rec.folder)
     win.show()
+    # what start-up made (modules, compiled kernels, the window's items) lives as long
+    # as the window: out of the collector's reach, its full passes while drawing then
+    # walk only what came since (about 200 000 objects fewer); garbage first collected,
+    # so that none is kept
+    gc.collect()
+    gc.freeze()
 
     def finish():
         if screenshot:

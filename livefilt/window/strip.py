@@ -26,7 +26,7 @@ import math
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6 import QtWidgets
+from PySide6 import QtCore, QtWidgets
 
 from livefilt.window import palette
 from livefilt.window.bands import BandImage, zigzag
@@ -206,6 +206,9 @@ class StripChart(pg.GraphicsLayoutWidget):
         # the traces are drawn without antialiasing: no 2-pixel margin around each
         # changed area, which reached the axes beside the views and repainted them
         self.setOptimizationFlag(QtWidgets.QGraphicsView.OptimizationFlag.DontAdjustForAntialiasing, True)
+        # the three views change every frame: one rectangle around them is repainted
+        # (the axes beside them stay outside it), cheaper for Qt than three
+        self.setViewportUpdateMode(QtWidgets.QGraphicsView.ViewportUpdateMode.BoundingRectViewportUpdate)
         names = tap.names
         self.plots, self.curves = [], []
         # short axis titles (three plots share the height); the window's caption says the rest
@@ -214,7 +217,8 @@ class StripChart(pg.GraphicsLayoutWidget):
                  for k, (i, name) in enumerate(chains)]
         self._rows = []  # (first, end) of each plot's streams in self.streams
         for r, (title, colours, streams) in enumerate(rows):
-            p = self.addPlot(row=r, col=0)
+            p = self.addPlot(row=r, col=0,
+                             axisItems={side: _FixedAxis(side) for side in ("left", "bottom", "top", "right")})
             p.setLabel("left", f"{title} ({units})", color=pg.mkColor(colours[0]).name())
             p.setMenuEnabled(False)
             p.hideButtons()
@@ -284,16 +288,13 @@ class StripChart(pg.GraphicsLayoutWidget):
         # the newest `width` columns, the rightmost pixel the one still filling
         t, lo, hi = r.columns(since=last - width + 1)
         t -= t_end  # seconds before now (<= 0)
-        ok = np.isfinite(lo)
-        ok &= np.isfinite(hi)
         span = (-width * r.spc / tap.rate_hz, 0.0)  # as many seconds as the columns hold
         if self._span != span:  # only when the strip length or the width changes
             self._span = span
             self.plots[0].setXRange(*span, padding=0)
         for p, (a, b) in zip(self.plots, self._rows):
-            good = ok[a:b]
-            if good.any():
-                fit_range(p, lo[a:b][good].min(), hi[a:b][good].max())
+            # fmin/fmax pass over NaN (no data); all NaN gives NaN, which fit_range ignores
+            fit_range(p, np.fmin.reduce(lo[a:b], axis=None), np.fmax.reduce(hi[a:b], axis=None))
             # move the views now: left to the paint (pyqtgraph's default), the move
             # dirties every item again and Qt paints the strip a second time each frame
             p.vb.updateMatrix()
@@ -329,6 +330,21 @@ class StripChart(pg.GraphicsLayoutWidget):
             _, lines = self._markers.pop(0)
             for p, ln in lines:
                 p.removeItem(ln)
+
+
+class _FixedAxis(pg.AxisItem):
+    """An axis whose bounds are worked out again only when its geometry changes: Qt
+    asks for them several times a frame while the views beside it repaint, and
+    pyqtgraph's computes them anew each time (about 28 us a call)."""
+
+    _key = None
+    _rect = None
+
+    def boundingRect(self):  # noqa: N802 (Qt name)
+        key = (self.geometry(), self.style["tickLength"], self.grid)
+        if key != self._key:
+            self._key, self._rect = key, super().boundingRect()
+        return QtCore.QRectF(self._rect)
 
 
 def fit_range(plot, lo: float, hi: float) -> None:
