@@ -50,6 +50,7 @@ Method
 
 from __future__ import annotations
 
+import functools
 import json
 import math
 import sys
@@ -115,10 +116,20 @@ def effective_samples(rows: int, dt_s: float, tau: float, n: int) -> tuple[float
 def tone_settling_s(sos: np.ndarray, fs: float, f_hz: float, fraction: float = 0.99) -> float:
     """Time for the filter stages' response to a tone switched on at ``f_hz``
     to come within ``1 - fraction`` of its steady amplitude (tone-burst
-    settling; the envelope a lock-in sees after the target stops)."""
-    from scipy.signal import sosfilt, sosfreqz
+    settling; the envelope a lock-in sees after the target stops).
+
+    Kept per (sections, rate, frequency, fraction): the live range view asks
+    twice a second, and each answer filters at least a second of the tone."""
     if sos is None or len(sos) == 0:
         return 0.0
+    sos = np.ascontiguousarray(sos, dtype=np.float64)
+    return _tone_settling(sos.tobytes(), sos.shape[0], float(fs), float(f_hz), float(fraction))
+
+
+@functools.lru_cache(maxsize=64)
+def _tone_settling(sos_bytes: bytes, n_sec: int, fs: float, f_hz: float, fraction: float) -> float:
+    from scipy.signal import sosfilt, sosfreqz
+    sos = np.frombuffer(sos_bytes, np.float64).reshape(n_sec, 6).copy()
     _, h = sosfreqz(sos, worN=[f_hz], fs=fs)
     gain = abs(h[0])
     if gain == 0:

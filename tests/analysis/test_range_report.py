@@ -209,3 +209,25 @@ def test_bad_inputs_are_one_line(tmp_path, capsys):
     assert cli_main(["range", str(tmp_path / "nothing")]) == 2
     err = capsys.readouterr().err
     assert "not a run folder" in err and len(err.strip().splitlines()) == 1
+
+
+def test_tone_settling_is_kept_per_sections_and_tone():
+    # the live range view asks twice a second: the answer is kept, and a strided view of
+    # the same sections is the same question. Reference, closed form: a first-order
+    # low-pass (time constant tau) driven by cos(w t) from rest gives the steady tone
+    # minus Re(H) exp(-t / tau), |Re(H)| = |H| cos(atan(w tau)), so it is within 1 % of
+    # |H| after tau ln(100 cos(atan(w tau))); within 1 ms (the digital pole of the
+    # bilinear design sits slightly off exp(-1 / (fs tau)))
+    from scipy import signal
+
+    from livefilt.analysis import range_report as rr
+    fs, tau = 8000.0, 0.01
+    sos = signal.butter(1, 1 / (2 * np.pi * tau), fs=fs, output="sos")
+    first = rr.tone_settling_s(sos, fs, 50.0)
+    hits = rr._tone_settling.cache_info().hits
+    wide = np.zeros((1, 12))
+    wide[:, ::2] = sos
+    assert rr.tone_settling_s(wide[:, ::2], fs, 50.0) == first
+    assert rr._tone_settling.cache_info().hits == hits + 1
+    assert rr.tone_settling_s(sos, fs, 60.0) != first  # another tone: computed anew
+    assert first == pytest.approx(tau * math.log(100 * math.cos(math.atan(2 * math.pi * 50 * tau))), abs=1e-3)
