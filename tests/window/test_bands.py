@@ -3,11 +3,17 @@ offscreen): the same data, every pixel of the zigzag as Qt's own stroker draws
 it, and a frame drawn column by column equal to one drawn whole."""
 
 import numpy as np
-import pyqtgraph as pg
-from PySide6 import QtCore, QtGui
 
-from livefilt.window.bands import BandImage, band_rows
-from livefilt.window.strip import MinMaxReducer
+from tests.system import need_module
+
+need_module("pyqtgraph", "pip install 'livefilt[window]'")
+need_module("PySide6", "pip install 'livefilt[window]'")
+
+import pyqtgraph as pg  # noqa: E402
+from PySide6 import QtCore, QtGui  # noqa: E402
+
+from livefilt.window.bands import BandImage, band_rows  # noqa: E402
+from livefilt.window.strip import MinMaxReducer  # noqa: E402
 
 W, H = 400, 120
 BG = 0xFFF7F6F2  # "#f7f6f2" as an opaque 32-bit pixel
