@@ -283,7 +283,6 @@ class StripChart(pg.GraphicsLayoutWidget):
             self._cursor = start + data.shape[1]
             r.push(start, data[self.streams])
         t_end = r.end_index / tap.rate_hz
-        t0 = max(0.0, t_end - self.seconds)
         last = r.last_column()
         # the newest `width` columns, the rightmost pixel the one still filling
         t, lo, hi = r.columns(since=last - width + 1)
@@ -300,7 +299,7 @@ class StripChart(pg.GraphicsLayoutWidget):
             p.vb.updateMatrix()
         for p, bands, (a, b) in zip(self.plots, self.curves, self._rows):
             bands.set_columns(last - t.shape[0] + 1, t, lo[a:b], hi[a:b], tuple(p.vb.viewRange()[1]))
-        self.window = (t0, max(t_end, self.seconds))
+        self.window = (max(0.0, t_end + span[0]), max(t_end, -span[0]))  # the span the axis shows
         for time_s, lines in self._markers:
             for _, ln in lines:
                 ln.setValue(time_s - t_end)
@@ -323,7 +322,7 @@ class StripChart(pg.GraphicsLayoutWidget):
 
     def _width(self) -> int:
         """The views' width in pixels (at least 200; the scene is drawn 1:1)."""
-        return max(200, int(round(self.plots[0].vb.width())) or 800)
+        return max(200, int(round(self.plots[0].vb.width())))
 
     def _prune_markers(self, before_s: float) -> None:
         while self._markers and self._markers[0][0] < before_s:
