@@ -229,7 +229,7 @@ def _filter_rows(bench, quick: bool) -> list[dict]:
     soses = [chain_sos(c.stages, fs) for c in bench.chains]
     columns = [frames[:, i].astype(np.float64) for i in inputs]
     want = np.array([signal.sosfilt(sos, x) for sos, x in zip(soses, columns)])
-    bank = FilterBank([SosFilter(sos) for sos in soses])
+    bank = FilterBank([SosFilter(sos) for sos in soses], inputs)
     y = np.empty((len(soses), n))
     y_block = np.empty((len(soses), 256))
     label = (f"filter stage at {fs / 1000:g} kHz, chains "
@@ -240,7 +240,7 @@ def _filter_rows(bench, quick: bool) -> list[dict]:
     for f in bank.filters:
         f.reset()
     for i in range(0, n, 256):
-        y[:, i:i + 256] = bank.process(frames[i:i + 256], inputs, y_block)[:, :min(256, n - i)]
+        y[:, i:i + 256] = bank.process(frames[i:i + 256], y_block)[:, :min(256, n - i)]
     for block in BLOCKS:
         out = np.empty((len(soses), block))  # preallocated once, as the engine does
 
@@ -248,7 +248,7 @@ def _filter_rows(bench, quick: bool) -> list[dict]:
             for f in bank.filters:
                 f.reset()
             for i in range(0, n, block):
-                bank.process(frames[i:i + block], inputs, out)
+                bank.process(frames[i:i + block], out)
 
         def whole():
             for sos, x in zip(soses, columns):

@@ -11,9 +11,9 @@ API map
 
   - ``sos_block(sos, zi, x, y)``: cascade of second-order sections over one
     block, transposed direct form II, the arithmetic of scipy's ``sosfilt``.
-  - ``sos_bank(packed, plan, data, channels, y)``: every chain's cascade
-    on one block of frames (n, channels) in one call (sections, state and
-    last samples packed in one array, see :class:`~livefilt.dsp.sections.FilterBank`).
+  - ``sos_bank(packed, data, y)``: every chain's cascade on one block of
+    frames (n, columns) in one call (the plan, sections, state and last
+    samples packed in one array, see :class:`~livefilt.dsp.sections.FilterBank`).
   - ``mix_internal(x, offset, fracs, cycles_per_sample, phase_rad, rot,
     u)``: dual-phase mixer on an internal reference (``rot`` the phasor
     table, :func:`rotation_table`) into ``u`` (2, >= n); the output
@@ -58,9 +58,13 @@ recursion (about 8 cycles a sample), not by its arithmetic; scipy's
 time with section ``j`` of the group ``j`` samples behind the first, so the
 four recursions are independent and the processor overlaps them, with the
 state held in registers.  Each section still processes its samples in order
-with ``sosfilt``'s arithmetic, so the output is bit-identical.  Measured on
-the demo chains (8 + 2 sections), 4096-sample blocks: 1.4 ns per section and
-sample against ``sosfilt``'s 2.2 ns (the project's DEVELOPERS.md has the table).
+with ``sosfilt``'s arithmetic, so the output is bit-identical.  The ramps in
+and out of a group (its first and last three samples) run skewed as well.
+Two sections left alone would again be bound by latency, so a bank runs a
+cascade's two left-over sections in the same loop as another cascade's last
+four (:func:`bank_plan`).  Measured on the demo chains (8 + 2 sections),
+4096-sample blocks, in one run: 1.0 ns per section and sample against
+``sosfilt``'s 1.7 ns (the project's DEVELOPERS.md has the table).
 
 Compiled with ``cache=True``: the first run compiles (a few seconds), later
 runs load the machine code from ``__pycache__``.
@@ -79,7 +83,7 @@ import os
 
 import numpy as np
 
-__all__ = ["compiled", "rotation_table", "sos_block", "sos_bank", "mix_internal", "segment_steps", "mix_cycles_rows",
+__all__ = ["compiled", "rotation_table", "sos_block", "sos_bank", "bank_plan", "mix_internal", "segment_steps", "mix_cycles_rows",
            "square_rows", "pll_block", "PLL_STATE", "RESEED", "ANCHOR", "NO_JIT_ENV"]
 
 log = logging.getLogger(__name__)
@@ -155,35 +159,105 @@ def sos_block(sos, zi, x, y):
     _cascade(sos, zi, 0, sos.shape[0], y, n)
 
 
+#: ``sos_bank`` plan operations (see :func:`bank_plan`).
+OP_LOAD, OP_CASCADE, OP_FOUR_TWO = 0, 1, 2
+
+
+def bank_plan(sizes, channels) -> np.ndarray:
+    """The int64 plan :func:`sos_bank` follows for cascades of ``sizes``
+    sections reading ``channels``.
+
+    ``[cascades, bounds (cascades + 1)..., columns (cascades)..., ops,
+    (kind, c, first, d, other) x ops]``.  Kinds: :data:`OP_LOAD` copies
+    cascade ``c``'s column into its output row; :data:`OP_CASCADE` runs its
+    sections ``first:other``; :data:`OP_FOUR_TWO` runs four sections of
+    cascade ``c`` from ``first`` and two of cascade ``d`` from ``other`` in
+    one skewed loop.  Two sections alone are bound by their recursions'
+    latency (a 2-section chain beside an 8-section one cost a fifth of a
+    64-sample block); beside another cascade's four they ride in the
+    processor's idle slots.  Each cascade is in one such pair at most, so no
+    pair waits for another.
+    """
+    sizes = [int(k) for k in sizes]
+    nc = len(sizes)
+    bounds = np.concatenate(([0], np.cumsum(sizes))).astype(np.int64)
+    fours = [k // 4 for k in sizes]
+    pairs, used = [], set()
+    for d in range(nc):  # a cascade with two sections left over ...
+        if sizes[d] % 4 < 2:
+            continue
+        for c in range(nc):  # ... beside another cascade's last four
+            if c != d and fours[c] and c not in used and d not in used:
+                pairs.append((c, d))
+                used |= {c, d}
+    giver = {c: d for c, d in pairs}
+    taker = {d: c for c, d in pairs}
+    ops, later = [], []
+    for c in range(nc):
+        b, e = int(bounds[c]), int(bounds[c + 1])
+        ops.append((OP_LOAD, c, 0, 0, 0))
+        if c in giver:
+            cut = b + 4 * (fours[c] - 1)
+            later.append((OP_CASCADE, c, cut + 4, 0, e))
+        elif c in taker:
+            cut = b + 4 * fours[c]
+            later.append((OP_CASCADE, c, cut + 2, 0, e))
+        else:
+            cut = e
+        if cut > b:
+            ops.append((OP_CASCADE, c, b, 0, cut))
+    for c, d in pairs:
+        ops.append((OP_FOUR_TWO, c, int(bounds[c]) + 4 * (fours[c] - 1), d,
+                    int(bounds[d]) + 4 * fours[d]))
+    ops += [op for op in later if op[2] < op[4]]
+    return np.concatenate(([nc], bounds, np.asarray(channels, dtype=np.int64),
+                           [len(ops)], np.ravel(ops))).astype(np.int64)
+
+
 @_jit
-def sos_bank(packed, plan, data, channels, y):
+def sos_bank(packed, data, y):
     """Several cascades on one block of frames, in one call.
 
-    ``packed`` (float64) holds the sections ``sos`` (S, 6), their state
-    ``zi`` (S, 2) and each cascade's last input sample, one after the other;
-    ``plan`` (int64) is ``[cascades, bounds...]``: cascade ``c`` is sections
-    ``bounds[c]:bounds[c + 1]``.  Cascade ``c`` reads column ``channels[c]``
-    of ``data`` (n, columns), any float type, widened to float64 as
-    ``astype`` would, and writes ``y[c, :n]``.  Every output is bit-identical
-    to ``sosfilt`` (see :func:`sos_block`).  Two arrays instead of four save
-    a quarter of the call overhead (about 0.3 us of 1.7 us at 64 samples);
-    nothing is returned, as boxing a returned array costs more.
+    ``packed`` (float64) begins with the plan (:func:`bank_plan`), its int64
+    words stored as they are (read through an int64 view), then holds the
+    sections ``sos`` (S, 6), their state ``zi`` (S, 2) and each cascade's
+    last input sample.  The plan gives each cascade's sections, the column
+    of ``data`` (n, columns) it reads (any float type, widened to float64 as
+    ``astype`` would) and the order of the work; cascade ``c`` writes
+    ``y[c, :n]``.  Every output is bit-identical to ``sosfilt`` (see
+    :func:`sos_block`).  Three arrays instead of five: each array argument
+    costs the call about 45 ns of a 64-sample block's 1.4 us; nothing is
+    returned, as boxing a returned array costs more.
     """
+    plan = packed.view(np.int64)
     n = data.shape[0]
     nc = plan[0]
     n_sec = plan[nc + 1]
-    sos = packed[:6 * n_sec].reshape((n_sec, 6))
-    zi = packed[6 * n_sec:8 * n_sec].reshape((n_sec, 2))
-    for c in range(nc):
-        col = channels[c]
-        for t0 in range(0, n, TILE):  # tiles stay in the processor's cache
-            t1 = min(n, t0 + TILE)
-            buf = y[c, t0:t1]
-            for k in range(t0, t1):
-                buf[k - t0] = data[k, col]
-            _cascade(sos, zi, plan[1 + c], plan[2 + c], buf, t1 - t0)
-        if n > 0:
-            packed[8 * n_sec + c] = data[n - 1, col]
+    at = 2 * nc + 3
+    n_ops = plan[at - 1]
+    h = at + 5 * n_ops
+    sos = packed[h:h + 6 * n_sec].reshape((n_sec, 6))
+    zi = packed[h + 6 * n_sec:h + 8 * n_sec].reshape((n_sec, 2))
+    for t0 in range(0, n, TILE):  # tiles stay in the processor's cache
+        t1 = min(n, t0 + TILE)
+        m = t1 - t0
+        for o in range(at, h, 5):
+            kind, c = plan[o], plan[o + 1]
+            if kind == OP_LOAD:
+                col = plan[nc + 2 + c]
+                buf = y[c, t0:t1]
+                for k in range(t0, t1):
+                    buf[k - t0] = data[k, col]
+            elif kind == OP_CASCADE:
+                _cascade(sos, zi, plan[o + 2], plan[o + 4], y[c, t0:t1], m)
+            elif m >= 4:
+                _four_two(sos, zi, plan[o + 2], y[c, t0:t1], plan[o + 4], y[plan[o + 3], t0:t1], m)
+            else:
+                _cascade(sos, zi, plan[o + 2], plan[o + 2] + 4, y[c, t0:t1], m)
+                _cascade(sos, zi, plan[o + 4], plan[o + 4] + 2, y[plan[o + 3], t0:t1], m)
+    if n > 0:
+        for c in range(nc):
+            packed[h + 8 * n_sec + c] = data[n - 1, plan[nc + 2 + c]]
 
 
 def rotation_table(cps: float) -> np.ndarray:
@@ -551,13 +625,20 @@ def _one(sos, zi, s, buf, lo, hi):
 
 
 @_jit
+def _bq(c0, c1, c2, c4, c5, za, zb, v):
+    # one section on one sample, sosfilt's order of terms: (output, za, zb)
+    w = c0 * v + za
+    return w, c1 * v - c4 * w + zb, c2 * v - c5 * w
+
+
+@_jit
 def _two(sos, zi, s, buf, n):
-    # sections s, s+1 on buf[:n] (n >= 2), the second one sample behind
-    _one(sos, zi, s, buf, 0, 1)
+    # sections s, s+1 on buf[:n] (n >= 2), the second one sample behind; the
+    # first and last steps (one section each) held in registers as well
     p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
     q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
     pa, pb, qa, qb = zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1]
-    vq = buf[0]
+    vq, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[0])
     for k in range(1, n):
         v = buf[k]
         w = p0 * v + pa
@@ -568,26 +649,32 @@ def _two(sos, zi, s, buf, n):
         qb = q2 * vq - q5 * x
         buf[k - 1] = x
         vq = w
-    buf[n - 1] = vq
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    buf[n - 1] = x
     zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1] = pa, pb, qa, qb
-    _one(sos, zi, s + 1, buf, n - 1, n)
 
 
 @_jit
 def _four(sos, zi, s, buf, n):
-    # sections s..s+3 on buf[:n] (n >= 3), section s+j running j samples behind
-    _one(sos, zi, s, buf, 0, 3)
-    _one(sos, zi, s + 1, buf, 0, 2)
-    _one(sos, zi, s + 2, buf, 0, 1)
+    # sections s..s+3 on buf[:n] (n >= 3), section s+j running j samples
+    # behind; the ramps in and out (1, 2, 3 sections at a time) run skewed
+    # too, so no section waits for another one's whole ramp
     p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
     q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
     r0, r1, r2, r4, r5 = sos[s + 2, 0], sos[s + 2, 1], sos[s + 2, 2], sos[s + 2, 4], sos[s + 2, 5]
     u0, u1, u2, u4, u5 = sos[s + 3, 0], sos[s + 3, 1], sos[s + 3, 2], sos[s + 3, 4], sos[s + 3, 5]
     pa, pb, qa, qb = zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1]
     ra, rb, ua, ub = zi[s + 2, 0], zi[s + 2, 1], zi[s + 3, 0], zi[s + 3, 1]
-    vq = buf[2]  # the inputs waiting for sections s+1, s+2, s+3
-    vr = buf[1]
-    vu = buf[0]
+    # ramp in: vq, vr, vu are the inputs waiting for sections s+1, s+2, s+3
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[0])
+    vq = w
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[1])
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    vr, vq = x, w
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[2])
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    vu, vr, vq = y, x, w
     for k in range(3, n):
         v = buf[k]
         w = p0 * v + pa
@@ -606,14 +693,96 @@ def _four(sos, zi, s, buf, n):
         vu = y
         vr = x
         vq = w
-    buf[n - 1] = vq
-    buf[n - 2] = vr
-    buf[n - 3] = vu
+    # ramp out: the last sample through sections s+1..s+3
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 3] = z
+    vu, vr = y, x
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 2] = z
+    vu = y
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 1] = z
     zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1] = pa, pb, qa, qb
     zi[s + 2, 0], zi[s + 2, 1], zi[s + 3, 0], zi[s + 3, 1] = ra, rb, ua, ub
-    _one(sos, zi, s + 1, buf, n - 1, n)
-    _one(sos, zi, s + 2, buf, n - 2, n)
-    _one(sos, zi, s + 3, buf, n - 3, n)
+
+
+@_jit
+def _four_two(sos, zi, s, buf, t, buf2, n):
+    # _four's sections s..s+3 on buf[:n] and _two's sections t, t+1 on
+    # buf2[:n] (another cascade) in one loop (n >= 3): six independent
+    # recursions; each section's arithmetic and order as in _four and _two
+    p0, p1, p2, p4, p5 = sos[s, 0], sos[s, 1], sos[s, 2], sos[s, 4], sos[s, 5]
+    q0, q1, q2, q4, q5 = sos[s + 1, 0], sos[s + 1, 1], sos[s + 1, 2], sos[s + 1, 4], sos[s + 1, 5]
+    r0, r1, r2, r4, r5 = sos[s + 2, 0], sos[s + 2, 1], sos[s + 2, 2], sos[s + 2, 4], sos[s + 2, 5]
+    u0, u1, u2, u4, u5 = sos[s + 3, 0], sos[s + 3, 1], sos[s + 3, 2], sos[s + 3, 4], sos[s + 3, 5]
+    g0, g1, g2, g4, g5 = sos[t, 0], sos[t, 1], sos[t, 2], sos[t, 4], sos[t, 5]
+    h0, h1, h2, h4, h5 = sos[t + 1, 0], sos[t + 1, 1], sos[t + 1, 2], sos[t + 1, 4], sos[t + 1, 5]
+    pa, pb, qa, qb = zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1]
+    ra, rb, ua, ub = zi[s + 2, 0], zi[s + 2, 1], zi[s + 3, 0], zi[s + 3, 1]
+    ga, gb, ha, hb = zi[t, 0], zi[t, 1], zi[t + 1, 0], zi[t + 1, 1]
+    # ramps in: the four's as in _four; the two's first three samples
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[0])
+    vq = w
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[1])
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    vr, vq = x, w
+    w, pa, pb = _bq(p0, p1, p2, p4, p5, pa, pb, buf[2])
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    vu, vr, vq = y, x, w
+    vh, ga, gb = _bq(g0, g1, g2, g4, g5, ga, gb, buf2[0])
+    for k in range(1, 3):
+        e, ga, gb = _bq(g0, g1, g2, g4, g5, ga, gb, buf2[k])
+        f, ha, hb = _bq(h0, h1, h2, h4, h5, ha, hb, vh)
+        buf2[k - 1] = f
+        vh = e
+    for k in range(3, n):
+        v = buf[k]
+        w = p0 * v + pa
+        pa = p1 * v - p4 * w + pb
+        pb = p2 * v - p5 * w
+        x = q0 * vq + qa
+        qa = q1 * vq - q4 * x + qb
+        qb = q2 * vq - q5 * x
+        y = r0 * vr + ra
+        ra = r1 * vr - r4 * y + rb
+        rb = r2 * vr - r5 * y
+        z = u0 * vu + ua
+        ua = u1 * vu - u4 * z + ub
+        ub = u2 * vu - u5 * z
+        v2 = buf2[k]
+        e = g0 * v2 + ga
+        ga = g1 * v2 - g4 * e + gb
+        gb = g2 * v2 - g5 * e
+        f = h0 * vh + ha
+        ha = h1 * vh - h4 * f + hb
+        hb = h2 * vh - h5 * f
+        buf[k - 3] = z
+        buf2[k - 1] = f
+        vu = y
+        vr = x
+        vq = w
+        vh = e
+    # ramps out
+    x, qa, qb = _bq(q0, q1, q2, q4, q5, qa, qb, vq)
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 3] = z
+    vu, vr = y, x
+    y, ra, rb = _bq(r0, r1, r2, r4, r5, ra, rb, vr)
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 2] = z
+    vu = y
+    z, ua, ub = _bq(u0, u1, u2, u4, u5, ua, ub, vu)
+    buf[n - 1] = z
+    f, ha, hb = _bq(h0, h1, h2, h4, h5, ha, hb, vh)
+    buf2[n - 1] = f
+    zi[s, 0], zi[s, 1], zi[s + 1, 0], zi[s + 1, 1] = pa, pb, qa, qb
+    zi[s + 2, 0], zi[s + 2, 1], zi[s + 3, 0], zi[s + 3, 1] = ra, rb, ua, ub
+    zi[t, 0], zi[t, 1], zi[t + 1, 0], zi[t + 1, 1] = ga, gb, ha, hb
 
 
 @_jit
@@ -766,8 +935,9 @@ def _build() -> _Kernels:
     x = np.zeros(4)
     one = np.array([[1.0, 0, 0, 1, 0, 0]])
     sos_block(one, np.zeros((1, 2)), x, np.zeros(4))
-    sos_bank(np.concatenate((one.ravel(), np.zeros(3))), np.array([1, 0, 1]),
-             np.zeros((4, 2), np.float32), np.array([1]), np.zeros((1, 4)))
+    plan = bank_plan([1], [1])
+    sos_bank(np.concatenate((plan.view(np.float64), one.ravel(), np.zeros(3))),
+             np.zeros((4, 2), np.float32), np.zeros((1, 4)))
     mix_internal(x, 4094, np.zeros(2), 0.1, 0.0, np.zeros((2, RESEED)), np.zeros((2, 4)))
     segment_steps(np.zeros((2, 1, 1)), np.zeros((1, 2)), np.zeros((2, 1, 1)), np.zeros((2, 4)), 0,
                   0, 1, 1, np.zeros(2), np.zeros((2, 4)), np.zeros(1))

@@ -151,8 +151,8 @@ class Engine:
         self._y = np.zeros((len(self.chains), n_max))
         self.workers = max(1, min(int(workers), len(self.chains)))
         cuts = np.linspace(0, len(self.chains), self.workers + 1).round().astype(int)
-        self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]]))
-                        for a, b in zip(cuts[:-1], cuts[1:])]
+        self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]], self._inputs[a:b]),
+                         self._y[a:b]) for a, b in zip(cuts[:-1], cuts[1:])]
         self._pool = (ThreadPoolExecutor(self.workers - 1, thread_name_prefix="livefilt-chains")
                       if self.workers > 1 else None)
         self._streams = np.zeros((src.channels + len(self.chains), n_max), dtype=np.float32)
@@ -410,9 +410,8 @@ class Engine:
 
     def _run_group(self, group, data, start: int, n: int) -> list:
         """Filter and detect chains ``a:b`` on one block; their rows."""
-        a, b, bank = group
-        y = self._y[a:b]
-        bank.process(data, self._inputs[a:b], y)
+        a, b, bank, y = group
+        bank.process(data, y)
         rows_all = []
         for k in range(a, b):
             c = self.chains[k]
@@ -444,6 +443,9 @@ class Engine:
                     continue
                 self.chains[i].retune(new)
                 self.chains[i].channel = self._inputs[i] = self._channel_index(new, i)
+                for a, b, bank, _ in self._groups:
+                    if a <= i < b:
+                        bank.channels[i - a] = self._inputs[i]
         st = self.stats
         if blk.dropped or blk.gaps:
             st.dropped += blk.dropped

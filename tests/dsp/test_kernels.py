@@ -75,17 +75,68 @@ def test_skewed_sections_are_bit_identical_to_sosfilt_for_every_group_and_block(
     np.testing.assert_array_equal(got, signal.sosfilt(sos, x))
     frames = x.reshape(-1, 2).astype(np.float32)
     fa, fb = SosFilter(sos), SosFilter(signal.butter(3, 0.1, output="sos"))
-    bank = FilterBank([fa, fb])
-    inputs = np.array([1, 0], dtype=np.int64)
+    bank = FilterBank([fa, fb], [1, 0])
     out, ys, i = np.empty((2, 400)), [], 0
     for j in list(cuts[cuts < len(frames)]) + [len(frames)]:
-        bank.process(frames[i:j], inputs, out)
+        bank.process(frames[i:j], out)
         ys.append(out[:, :j - i].copy())
         i = j
     y = np.concatenate(ys, axis=1)
     np.testing.assert_array_equal(y[0], signal.sosfilt(sos, frames[:, 1].astype(np.float64)))
     np.testing.assert_array_equal(y[1], signal.sosfilt(fb.sos, frames[:, 0].astype(np.float64)))
     assert fa._last == float(frames[-1, 1]) and fb._last == float(frames[-1, 0])
+
+
+@pytest.mark.parametrize("sizes", [[8, 2], [2, 8], [10, 6, 1, 3], [4, 2, 2, 4], [6, 6], [2], [3, 7, 2, 11]])
+def test_bank_pairs_cascades_and_stays_bit_identical_to_sosfilt(sizes):
+    # source: scipy.signal.sosfilt per cascade on the whole array (reference
+    # library); the bank's plan runs a cascade's last four sections beside
+    # another cascade's two left over, in one loop, and must not change a bit,
+    # for blocks shorter than a group (1 to 5 samples) as well
+    rng = np.random.default_rng(sum(sizes))
+    soses = [signal.butter(2 * k, [0.02 + 0.01 * i, 0.3], btype="bandpass", output="sos")[:k]
+             for i, k in enumerate(sizes)]
+    cols = rng.integers(0, 3, size=len(sizes))
+    frames = rng.standard_normal((5000, 3)).astype(np.float32)
+    bank = FilterBank([SosFilter(sos) for sos in soses], cols)
+    plan = bank.plan
+    nc = plan[0]
+    ops = plan[2 * nc + 3:].reshape(-1, 5)
+    assert len(ops) == plan[2 * nc + 2]
+    # every section in exactly one operation
+    covered = []
+    for kind, c, first, d, other in ops:
+        if kind == kernels.OP_CASCADE:
+            covered += range(first, other)
+        elif kind == kernels.OP_FOUR_TWO:
+            covered += list(range(first, first + 4)) + list(range(other, other + 2))
+    assert sorted(covered) == list(range(sum(sizes)))
+    cuts = np.cumsum(np.r_[1, 2, 3, 4, 5, rng.integers(1, 3000, size=6)])
+    out, ys, i = np.empty((len(sizes), 3000)), [], 0
+    for j in list(cuts[cuts < len(frames)]) + [len(frames)]:
+        bank.process(frames[i:j], out)
+        ys.append(out[:, :j - i].copy())
+        i = j
+    y = np.concatenate(ys, axis=1)
+    for k, (sos, col) in enumerate(zip(soses, cols)):
+        np.testing.assert_array_equal(y[k], signal.sosfilt(sos, frames[:, col].astype(np.float64)))
+
+
+def test_bank_pairs_a_two_section_chain_with_another_chains_four():
+    # the demo's chains (8 and 2 sections): B's two sections run beside A's
+    # last four; a cascade is in one pair at most
+    plan = kernels.bank_plan([8, 2], [0, 0])
+    ops = plan[7:].reshape(-1, 5)
+    assert [tuple(op) for op in ops if op[0] == kernels.OP_FOUR_TWO] == [(kernels.OP_FOUR_TWO, 0, 4, 1, 8)]
+    plan = kernels.bank_plan([2, 2, 2], [0, 0, 0])  # no cascade with four: no pair
+    assert kernels.OP_FOUR_TWO not in plan[9:].reshape(-1, 5)[:, 0]
+
+
+def test_bank_refuses_a_channel_list_that_does_not_fit():
+    with pytest.raises(ValueError, match="one column index >= 0 per filter"):
+        FilterBank([SosFilter(signal.butter(2, 0.1, output="sos"))], [0, 1])
+    with pytest.raises(ValueError, match="one column index >= 0 per filter"):
+        FilterBank([SosFilter(signal.butter(2, 0.1, output="sos"))], [-1])
 
 
 def test_sos_kernel_writes_strided_out_and_keeps_state_arrays():
@@ -105,11 +156,10 @@ def test_filter_bank_equals_sosfilt_per_chain_and_repacks_after_retune():
     b = signal.butter(2, 0.2, output="sos")
     frames = np.random.default_rng(5).standard_normal((6000, 2)).astype(np.float32)
     fa, fb = SosFilter(a), SosFilter(b)
-    bank = FilterBank([fa, fb])
-    inputs = np.array([1, 0], dtype=np.int64)
+    bank = FilterBank([fa, fb], [1, 0])
     out = np.empty((2, 6000))
     for i in range(0, 6000, 256):
-        bank.process(frames[i:i + 256], inputs, out[:, i:i + 256])
+        bank.process(frames[i:i + 256], out[:, i:i + 256])
     x1, x0 = frames[:, 1].astype(np.float64), frames[:, 0].astype(np.float64)
     np.testing.assert_allclose(out[0], signal.sosfilt(a, x1), rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(out[1], signal.sosfilt(b, x0), rtol=1e-12, atol=1e-14)
@@ -117,7 +167,7 @@ def test_filter_bank_equals_sosfilt_per_chain_and_repacks_after_retune():
     fb.retune(signal.butter(6, 0.2, output="sos"))
     state = fb.zi.copy()
     more = frames[:500]
-    bank.process(more, inputs, out)
+    bank.process(more, out)
     ref = SosFilter(fb.sos)
     ref.zi[...] = state
     np.testing.assert_allclose(out[1, :500], ref.process(more[:, 0]), rtol=1e-12, atol=1e-14)

@@ -128,6 +128,36 @@ def test_change_chain_applies_at_a_block_boundary():
     assert e.current_settings().chains[0].stages[0].cutoff_hz == 500
 
 
+@pytest.mark.parametrize("workers", [1, 2])
+def test_a_chain_moved_to_another_input_filters_that_input(workers):
+    # reference: scipy.signal.sosfilt with the filter's state carried in (zi),
+    # on the column the chain now reads; the filter bank keeps the columns,
+    # so the move must reach the bank of the chain's group
+    from scipy import signal
+    e = Engine(fast_demo(), workers=workers, batch=1)
+    data = e.source.generate(0, 256 * 4)
+    table = e.chains[1].settings.to_mapping()
+    table["input"] = 1  # the LED channel
+    seen = []
+    e.listeners.append(lambda eng, start, raw, ys, rs: seen.append(
+        (raw[:, 1].astype(np.float64), ys[1].copy())))
+    f = e.chains[1].filter
+    try:
+        e.ring.write(data[:256])
+        e.step(0)
+        e.change_chain(1, table)
+        e.ring.write(data[256:512])
+        e.step(0)  # the change applies at this block
+        zi = f.zi.copy()
+        e.ring.write(data[512:768])
+        e.step(0)
+    finally:
+        e.source.stop()
+    x, y = seen[-1]
+    assert e.chains[1].channel == 1
+    np.testing.assert_array_equal(y, signal.sosfilt(f.sos, x, zi=zi)[0])
+
+
 def test_change_chain_refuses_bad_values_with_the_loader_message():
     from livefilt.errors import SettingError
     e = Engine(fast_demo())
