@@ -67,7 +67,6 @@ import threading
 
 import numpy as np
 
-from livefilt import fields
 from livefilt.errors import SettingError
 from livefilt.threads import Worker
 from livefilt.acquire.source import DeviceInfo, Pacer, Source

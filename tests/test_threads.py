@@ -6,7 +6,6 @@ import errno
 import logging
 import threading
 
-import pytest
 
 from livefilt.config import demo_config
 from livefilt.drivers.simulated import SimulatedSource

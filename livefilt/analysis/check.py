@@ -411,7 +411,7 @@ def _write(out, doc: dict, figs: dict, cap: Capture) -> None:
 def _spectrum_figure(figs: dict, doc: dict):
     spec = figs["spec"]
     fig, ax = figure(8.0, 4.6)
-    f, d = spec.freqs_hz[1:], spec.density[1:]
+    d = spec.density[1:]
     draw_density(ax, spec, figs["lines"], max_marks=14)
     raw = figs["raw"]
     if figs["tone"] is not None:

@@ -5,7 +5,6 @@ step response at the detector output; predicted SNR against distance."""
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 

@@ -302,7 +302,7 @@ def _local(jobs, workers: int, on_done, on_fail) -> None:
                 i = futs[fut]
                 try:
                     on_done(fut.result())
-                except BrokenProcessPool as e:
+                except BrokenProcessPool:
                     broken = True
                     tries[i] += 1
                     (todo.append(i) if tries[i] < 2 else on_fail(jobs[i], "a worker process died"))

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from livefilt.analysis.range_report import (analyse, build_report, effective_samples,
+from livefilt.analysis.range_report import (analyse, effective_samples,
                                             row_correlation, segment_amplitudes)
 from livefilt.cli import main as cli_main
 from livefilt.config import parse_config

@@ -14,7 +14,6 @@ import time
 import tomllib
 
 import numpy as np
-import pytest
 import scipy.io.wavfile as sw
 import soundfile
 

@@ -4,7 +4,6 @@ parts follow every accepted edit; numbers equal the design report's."""
 from __future__ import annotations
 
 import numpy as np
-import pytest
 from scipy import signal
 
 from tests.system import need_module  # noqa: E402

@@ -19,8 +19,6 @@ from tests.system import need_module  # noqa: E402
 need_module("pyqtgraph", "pip install 'livefilt[window]'")
 need_module("PySide6", "pip install 'livefilt[window]'")
 
-from PySide6 import QtCore  # noqa: E402
-
 from livefilt.config import demo_config, load_config, parse_config  # noqa: E402
 from livefilt.stream.engine import Engine  # noqa: E402
 from livefilt.errors import SettingError  # noqa: E402
