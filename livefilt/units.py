@@ -7,7 +7,7 @@ import math
 
 import numpy as np
 
-__all__ = ["si", "level_db", "level_unit"]
+__all__ = ["si", "distance", "level_db", "level_unit"]
 
 _PREFIX = [(1e-12, "p"), (1e-9, "n"), (1e-6, "µ"), (1e-3, "m"), (1.0, ""), (1e3, "k"), (1e6, "M")]
 
@@ -29,6 +29,14 @@ def si(x: float, unit: str, digits: int = 4, fixed: bool = False) -> str:
             scale, p = s, pre
     text = f"{x / scale:{'#' if fixed else ''}.{digits}g}".rstrip(".")
     return f"{text} {p}{unit}"
+
+
+def distance(metres: float) -> str:
+    """A target distance as a bench note gives it, to the millimetre:
+    ``2.853333 -> "2.853 m"``, ``0.5 -> "0.5 m"``; NaN or None -> ``"—"``."""
+    if metres is None or not math.isfinite(metres):
+        return "—"
+    return f"{round(float(metres), 3) + 0.0:g} m"  # + 0.0: no "-0 m"
 
 
 def level_db(rms, units: str):

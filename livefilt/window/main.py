@@ -37,6 +37,7 @@ from dataclasses import replace
 from PySide6 import QtCore, QtGui, QtWidgets
 
 from livefilt import safety
+from livefilt.units import distance as distance_text
 from livefilt.errors import LivefiltError
 from livefilt.window import palette
 from livefilt.window.designview import DesignView
@@ -331,7 +332,7 @@ class MainWindow(QtWidgets.QMainWindow):
         self._settings_changed()
 
     def _draw_marker(self, m: dict) -> None:
-        label = f"{m['distance_m']:g} m" if "distance_m" in m else m.get("note", "")
+        label = distance_text(m["distance_m"]) if "distance_m" in m else m.get("note", "")
         self.strip.add_marker(m["time_s"], label)
         self.strength.add_marker(m["time_s"])
 

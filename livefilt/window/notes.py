@@ -19,6 +19,7 @@ import time
 
 from PySide6 import QtCore, QtWidgets
 
+from livefilt.units import distance as distance_text
 from livefilt.errors import LivefiltError
 from livefilt.window import palette
 from livefilt.window.labels import LineBox
@@ -131,12 +132,12 @@ class NotesBar(QtWidgets.QFrame):
         new = list(marks[self._seen:])
         self._seen += len(new)
         for m in new:
-            label = (f"{m['distance_m']:g} m" if "distance_m" in m else "") + (
+            label = (distance_text(m["distance_m"]) if "distance_m" in m else "") + (
                 f"  {m['note']}" if m.get("note") else "")
             self.recent.insertItem(0, f"{m['time_s']:8.2f} s   {label.strip()}")
             if "distance_m" in m:
                 self.last_distance = (m["time_s"], m["distance_m"])
-                self.current.setText(f"{m['distance_m']:g} m")
+                self.current.setText(distance_text(m["distance_m"]))
                 self.current.setStyleSheet(f"color: {palette.MARKER};")
             self.marked.emit(m)
         if new:

@@ -24,6 +24,7 @@ import pyqtgraph as pg
 from PySide6 import QtCore, QtWidgets
 
 from livefilt.analysis.range_report import add_segments, analyse_group, group_for_chain
+from livefilt.units import distance as distance_text
 from livefilt.window import palette
 
 __all__ = ["RangeView"]
@@ -151,12 +152,12 @@ class RangeView(QtWidgets.QWidget):
         elif last.get("distance_m") is None:
             self.now.setText("target: moving")
         else:
-            self.now.setText(f"target: {last['distance_m']:.3g} m\n"
+            self.now.setText(f"target: {distance_text(last['distance_m'])}\n"
                              f"(marked {max(t_now - last['time_s'], 0):.0f} s ago)")
         lines = []
         for m in marks[-LAST_MARKERS:][::-1]:
             d = m.get("distance_m")
-            what = f"{d:.3g} m" if d is not None else "moving"
+            what = distance_text(d) if d is not None else "moving"
             note = m.get("note", "")
             lines.append(f"{m['time_s']:7.1f} s  {what}" + (f"  {note[:24]}" if note and d is not None else ""))
         self.marks.setText("\n".join(lines) if lines else "type a distance in the notes panel")

@@ -197,6 +197,10 @@ def test_marks_from_anywhere_show_as_the_current_distance(win, qtbot, artifacts)
     assert win.notes.recent.count() == 2  # each mark listed once
     assert win.notes.age.text().startswith("marked at") and "s ago" in win.notes.age.text()
     qtbot.wait(600)
+    win.engine.add_marker(8.0 / 3.0, "a scene's step")  # shown to the millimetre, not 2.66667
+    qtbot.waitUntil(lambda: win.notes.current.text() == "2.667 m", timeout=3000)
+    assert "2.667 m  a scene's step" in win.notes.recent.item(0).text()
+    qtbot.wait(300)
     win.save_screenshot(artifacts / "window_walkaway_marked.png")
 
 
