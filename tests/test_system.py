@@ -25,3 +25,13 @@ def test_missing_part_skips_elsewhere(monkeypatch):
         system.require(False, "no sound server")
     with pytest.raises(pytest.skip.Exception, match="no_such_module_here not importable"):
         system.need_module("no_such_module_here", "pip install it")
+
+
+@pytest.mark.parametrize("value", ["", "0", "false", "False", "no", "off"])
+def test_an_explicit_off_value_is_not_ci(monkeypatch, value):
+    # CI services set CI=true; a laptop's CI=false (or 0) must not turn skips into failures
+    monkeypatch.delenv("LIVEFILT_REQUIRE_SYSTEM", raising=False)
+    monkeypatch.setenv("CI", value)
+    assert not system.strict()
+    monkeypatch.setenv("CI", "true")
+    assert system.strict()
