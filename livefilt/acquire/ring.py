@@ -17,7 +17,9 @@ Rules
 
 Only two integers are shared (write and read positions), each written by one
 side only; under CPython's GIL a plain attribute store is atomic, which is
-what makes this lock-free hand-over safe.  The consumer waits on an Event.
+what makes this lock-free hand-over safe.  The consumer waits on an Event;
+a producer that must not overrun (a file or simulation as fast as it is
+read) waits on another, set at each read (:meth:`Ring.wait_for_room`).
 """
 
 from __future__ import annotations
@@ -87,6 +89,7 @@ class Ring:
         # (write position, frames lost, kind, note); appended by the producer
         self._events: deque = deque()
         self._ready = threading.Event()
+        self._room = threading.Event()  # set by each read: room for the producer
         self._closed = False
         #: Number of times the producer found the ring full.
         self.overruns = 0
@@ -145,6 +148,20 @@ class Ring:
         self._ready.set()
 
     # -- consumer side -------------------------------------------------
+    def wait_for_room(self, frames: int, timeout: float) -> bool:
+        """Producer side: wait up to ``timeout`` s until ``frames`` fit; True if they do.
+
+        Woken by the consumer's next read, so a producer that never
+        overruns (pace "fast") does not poll.
+        """
+        if self.free >= frames:
+            return True
+        self._room.clear()
+        if self.free >= frames:  # a read between the test and the clear
+            return True
+        self._room.wait(timeout)
+        return self.free >= frames
+
     @property
     def free(self) -> int:
         """Frames that can be written now without a loss (producer side)."""
@@ -196,4 +213,5 @@ class Ring:
         out[first:n] = self._buf[:n - first]
         index = self._r + self._index_offset
         self._r += n
+        self._room.set()
         return Block(out, index, dropped, gaps)

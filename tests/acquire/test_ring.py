@@ -1,6 +1,7 @@
 """The SPSC ring: order, sample index across losses, overrun accounting, threads."""
 
 import threading
+import time
 
 import numpy as np
 
@@ -84,3 +85,35 @@ def test_threads_exchange_every_frame_in_order():
     t.join()
     # float32 holds integers exactly below 2**24
     assert np.array_equal(np.concatenate(got), np.arange(total)) and r.overruns == 0
+
+
+def test_a_producer_waiting_for_room_is_woken_by_the_read():
+    # a fast source waits on the ring's room, not in a polling loop: a read wakes it
+    r = Ring(1, 100)
+    r.write(np.zeros(100, np.float32))
+    assert not r.wait_for_room(10, 0.01)  # full: times out
+    woke = []
+
+    def produce():
+        t0 = time.perf_counter()
+        woke.append((r.wait_for_room(10, 5.0), time.perf_counter() - t0))
+
+    t = threading.Thread(target=produce)
+    t.start()
+    time.sleep(0.05)
+    r.read(20)
+    t.join(2.0)
+    ok, waited = woke[0]
+    assert ok and waited < 1.0  # woken by the read, well before its 5 s timeout
+
+
+def test_pacer_fast_stops_while_the_ring_stays_full():
+    from livefilt.acquire.source import Pacer
+    r = Ring(1, 100)
+    r.write(np.zeros(100, np.float32))
+    stop = threading.Event()
+    p = Pacer(48000.0, False, stop)
+    threading.Timer(0.05, stop.set).start()
+    t0 = time.perf_counter()
+    assert p.wait(r, 0, 10) is False
+    assert time.perf_counter() - t0 < 1.0  # the stop seen within one 50 ms wait

@@ -34,6 +34,9 @@ def test_range_view_grows_with_the_markers(qtbot, artifacts):
     view.show()
     view.refresh()
     assert "no distance marked" in view.now.text()
+    # a fast source covers the walk in a few long steps, quicker than the view's
+    # polls: each step held a moment, so the view is seen while it grows
+    engine.listeners.append(lambda *args: time.sleep(0.3))
     engine.start()
     seen_points = []
     deadline = time.monotonic() + 120
