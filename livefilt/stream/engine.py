@@ -32,7 +32,7 @@ from livefilt.stream.chain import Chain
 from livefilt.config import ChainSettings, Settings, parse_chain, toml_text
 from livefilt.dsp.detect import ReferenceSpec
 from livefilt.errors import SettingError, SourceError
-from livefilt.threads import Worker
+from livefilt.threads import Worker, one_blas_thread
 from livefilt.runs.record import RunWriter, make_marker, new_run_folder
 from livefilt.acquire.guard import InputGuard, resolution_limit
 from livefilt.acquire.ring import Ring
@@ -110,6 +110,7 @@ class Engine:
 
     def __init__(self, settings: Settings, source: Source | None = None, *,
                  batch: int | None = None, tap_seconds: float = 0.0, workers: int = 1):
+        one_blas_thread()  # the lock-ins' small products; BLAS's threads would spin on the cores
         self.source = source if source is not None else build_source(settings)
         self.source.open()
         src = self.source

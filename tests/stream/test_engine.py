@@ -194,3 +194,14 @@ def test_start_without_a_dc_step_transient():
     e.listeners.append(lambda eng, start, raw, ys, rows: outs.append(ys[0, :len(raw)].copy()))
     e.run()
     assert np.max(np.abs(np.concatenate(outs))) < 1e-9
+
+
+def test_an_engine_runs_numpys_blas_on_one_thread():
+    # BLAS's own worker threads spin between the lock-ins' small products and take
+    # the cores from the recorder, the reader and the engine's second worker
+    import threadpoolctl
+    e = Engine(fast_demo())
+    e.source.stop()
+    blas = [i for i in threadpoolctl.threadpool_info()
+            if i["user_api"] == "blas" and "numpy" in i["filepath"]]
+    assert blas and all(i["num_threads"] == 1 for i in blas)
