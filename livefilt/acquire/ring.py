@@ -147,7 +147,6 @@ class Ring:
         self._closed = True
         self._ready.set()
 
-    # -- consumer side -------------------------------------------------
     def wait_for_room(self, frames: int, timeout: float) -> bool:
         """Producer side: wait up to ``timeout`` s until ``frames`` fit; True if they do.
 
@@ -167,6 +166,7 @@ class Ring:
         """Frames that can be written now without a loss (producer side)."""
         return self.capacity - (self._w - self._r)
 
+    # -- consumer side -------------------------------------------------
     @property
     def available(self) -> int:
         """Frames written and not yet read."""

@@ -148,11 +148,11 @@ class Engine:
         n_max = self.block * self.batch
         # every group's chains filtered in one compiled call per block
         # (FilterBank); one group unless the chains are spread over workers
-        self._inputs = np.array([c.channel for c in self.chains], dtype=np.int64)
+        inputs = [c.channel for c in self.chains]
         self._y = np.zeros((len(self.chains), n_max))
         self.workers = max(1, min(int(workers), len(self.chains)))
         cuts = np.linspace(0, len(self.chains), self.workers + 1).round().astype(int)
-        self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]], self._inputs[a:b]),
+        self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]], inputs[a:b]),
                          self._y[a:b]) for a, b in zip(cuts[:-1], cuts[1:])]
         self._pool = (ThreadPoolExecutor(self.workers - 1, thread_name_prefix="livefilt-chains")
                       if self.workers > 1 else None)
@@ -443,10 +443,10 @@ class Engine:
                         c.set_reference(new)
                     continue
                 self.chains[i].retune(new)
-                self.chains[i].channel = self._inputs[i] = self._channel_index(new, i)
-                for a, b, bank, _ in self._groups:
+                self.chains[i].channel = self._channel_index(new, i)
+                for a, b, bank, _ in self._groups:  # the bank keeps its chains' columns
                     if a <= i < b:
-                        bank.channels[i - a] = self._inputs[i]
+                        bank.channels[i - a] = self.chains[i].channel
         st = self.stats
         if blk.dropped or blk.gaps:
             st.dropped += blk.dropped
