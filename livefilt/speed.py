@@ -240,7 +240,7 @@ def _filter_rows(bench, quick: bool) -> list[dict]:
     for f in bank.filters:
         f.reset()
     for i in range(0, n, 256):
-        y[:, i:i + 256] = bank.process(frames[i:i + 256], y_block)[:, :min(256, n - i)]
+        y[:, i:i + 256] = bank.process_frames(frames[i:i + 256], y_block)[:, :min(256, n - i)]
     for block in BLOCKS:
         out = np.empty((len(soses), block))  # preallocated once, as the engine does
 
@@ -248,7 +248,7 @@ def _filter_rows(bench, quick: bool) -> list[dict]:
             for f in bank.filters:
                 f.reset()
             for i in range(0, n, block):
-                bank.process(frames[i:i + block], out)
+                bank.process_frames(frames[i:i + block], out)
 
         def whole():
             for sos, x in zip(soses, columns):

@@ -412,7 +412,7 @@ class Engine:
     def _run_group(self, group, data, start: int, n: int) -> list:
         """Filter and detect chains ``a:b`` on one block; their rows."""
         a, b, bank, y = group
-        bank.process(data, y)
+        bank.process_frames(data, y)  # data: the ring's float32 (n, channels) block
         rows_all = []
         for k in range(a, b):
             c = self.chains[k]

@@ -122,6 +122,29 @@ def test_bank_pairs_cascades_and_stays_bit_identical_to_sosfilt(sizes):
         np.testing.assert_array_equal(y[k], signal.sosfilt(sos, frames[:, col].astype(np.float64)))
 
 
+def test_bank_direct_call_equals_the_dispatched_call_and_refuses_another_dtype():
+    # source: scipy.signal.sosfilt per cascade on the whole array (reference
+    # library); process_frames calls the compiled code without numba's
+    # dispatcher (the engine's float32 blocks) and must not change a bit
+    k = kernels.compiled()
+    assert k.sos_bank_frames is not k.sos_bank  # the direct entry was found
+    rng = np.random.default_rng(41)
+    soses = [signal.butter(8, [0.01, 0.2], btype="bandpass", output="sos"), signal.butter(2, 0.05, output="sos")]
+    frames = rng.standard_normal((3000, 2)).astype(np.float32)
+    direct = FilterBank([SosFilter(s) for s in soses], [1, 0])
+    dispatched = FilterBank([SosFilter(s) for s in soses], [1, 0])
+    a, b = np.empty((2, 64)), np.empty((2, 64))
+    ya, yb = [], []
+    for i in range(0, 3000, 64):
+        ya.append(direct.process_frames(frames[i:i + 64], a)[:, :len(frames[i:i + 64])].copy())
+        yb.append(dispatched.process(frames[i:i + 64], b)[:, :len(frames[i:i + 64])].copy())
+    ya, yb = np.concatenate(ya, axis=1), np.concatenate(yb, axis=1)
+    np.testing.assert_array_equal(ya, yb)
+    np.testing.assert_array_equal(ya[0], signal.sosfilt(soses[0], frames[:, 1].astype(np.float64)))
+    with pytest.raises(TypeError):  # numba's own wrapper still checks the dtype
+        direct.process_frames(frames.astype(np.float64), a)
+
+
 def test_bank_pairs_a_two_section_chain_with_another_chains_four():
     # the demo's chains (8 and 2 sections): B's two sections run beside A's
     # last four; a cascade is in one pair at most
