@@ -75,6 +75,7 @@ from __future__ import annotations
 import functools
 import logging
 import math
+import threading
 from dataclasses import dataclass
 from fractions import Fraction
 
@@ -144,6 +145,22 @@ _WAVEFORMS = ("square", "sine")
 _SQRT2 = math.sqrt(2.0)
 _NO_ROWS = np.empty(0, READING_DTYPE)
 _NO_ROWS.flags.writeable = False  # shared by every block with no row due
+
+# One mixer-product array (2, n) per thread, shared by every lock-in that runs
+# there: a block's product is used up inside LockIn.process, so 16 chains on
+# two threads cycle two arrays through the processor's cache instead of 16
+# (1 MB each for a 65536-frame step).  Measured here, 8 inputs x 192 kHz, 16
+# chains, five runs alternating: two threads 49-57 x real time against 46-53,
+# speed-up over one thread 1.29-1.47 against 1.29-1.42; one thread unchanged.
+_MIXED = threading.local()
+
+
+def _mixed_scratch(n: int) -> np.ndarray:
+    """This thread's mixer-product array of shape (2, n), C-contiguous."""
+    buf = getattr(_MIXED, "buf", None)
+    if buf is None or buf.shape[1] != n:
+        buf = _MIXED.buf = np.empty((2, n))
+    return buf
 
 
 # -- settings ---------------------------------------------------------------
@@ -632,7 +649,7 @@ class LockIn(_Detector):
         if cycles is None:
             offset = start_index % kernels.ANCHOR
             fracs = self._anchor_phases(start_index - offset, offset + n)
-            mixed = self._buffer("mixed", (2, n))
+            mixed = _mixed_scratch(n)  # used up below: RowLowpass copies what it keeps
             self._kern.mix_internal(x, offset, fracs, self._cycles_per_sample, self.phase_rad,
                                     self._rotation, mixed)
             rows, m = self._lp.process(mixed, start_index)

@@ -270,6 +270,42 @@ def test_compiled_lockin_rows_do_not_depend_on_block_split():
         np.testing.assert_allclose(split[name], one[name], rtol=0, atol=1e-13 * scale)
 
 
+def test_lockins_sharing_a_threads_mixer_array_read_as_they_do_alone():
+    # every lock-in on a thread mixes into that thread's one array: lock-ins
+    # interleaved block by block, and two threads at once, give the rows
+    # each gives alone, bit for bit
+    import threading
+    x2 = X[::-1].copy()
+    alone = [_feed(_lockin(False), X, range(512, N, 512)),
+             _feed(_lockin(False, frequency_hz=911.0), x2, range(512, N, 512))]
+    alone64 = [_feed(_lockin(False), X, range(64, N, 64)),
+               _feed(_lockin(False, frequency_hz=911.0), x2, range(64, N, 64))]
+    mixed = [_lockin(False), _lockin(False, frequency_hz=911.0)]
+    got = [[], []]
+    for i in range(0, N, 512):
+        for k, x in enumerate((X, x2)):
+            got[k].append(mixed[k].process(x[i:i + 512], i))
+    def same(a, b):  # field by field: a structured comparison counts NaN (no noise yet) as unequal
+        for name in b.dtype.names:
+            np.testing.assert_array_equal(a[name], b[name], err_msg=name)
+
+    for k in range(2):
+        same(np.concatenate(got[k]), alone[k])
+    out = [None, None]
+
+    def run(k, x, hz):  # short blocks: many calls, so the threads overlap
+        det = _lockin(False, frequency_hz=hz)
+        out[k] = _feed(det, x, range(64, N, 64))
+
+    threads = [threading.Thread(target=run, args=a) for a in ((0, X, 1370.3), (1, x2, 911.0))]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    for k in range(2):
+        same(out[k], alone64[k])
+
+
 @pytest.mark.parametrize("every, block, n", [
     (1, 1, 3000), (3, 97, 20000), (2400, 1, 5300), (2400, 97, 30000), (2400, 4096, 60000),
     (2400, 65536, 200000), (20000, 97, 50000), (20000, 4096, 100000), (16411 * 2, 65536, 140000)])
