@@ -81,7 +81,10 @@ class Ring:
             raise ValueError("a ring needs at least one channel and two frames")
         self.channels = int(channels)
         self.capacity = int(capacity)
-        self._buf = np.zeros((self.capacity, self.channels), dtype=np.float32)
+        # np.full writes every page now (np.zeros maps them on first touch): the
+        # first pass of a stream over the ring takes no page faults, which on
+        # two cores also stalled the engine's threads (common real-time audio practice)
+        self._buf = np.full((self.capacity, self.channels), 0.0, dtype=np.float32)
         self._out = np.zeros((self.capacity, self.channels), dtype=np.float32)
         self._w = 0  # frames written in total (producer only)
         self._r = 0  # frames read in total (consumer only)

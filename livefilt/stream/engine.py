@@ -149,14 +149,14 @@ class Engine:
         # every group's chains filtered in one compiled call per block
         # (FilterBank); one group unless the chains are spread over workers
         inputs = [c.channel for c in self.chains]
-        self._y = np.zeros((len(self.chains), n_max))
+        self._y = np.full((len(self.chains), n_max), 0.0)  # pages touched now, as the ring's
         self.workers = max(1, min(int(workers), len(self.chains)))
         cuts = np.linspace(0, len(self.chains), self.workers + 1).round().astype(int)
         self._groups = [(a, b, FilterBank([c.filter for c in self.chains[a:b]], inputs[a:b]),
                          self._y[a:b]) for a, b in zip(cuts[:-1], cuts[1:])]
         self._pool = (ThreadPoolExecutor(self.workers - 1, thread_name_prefix="livefilt-chains")
                       if self.workers > 1 else None)
-        self._streams = np.zeros((src.channels + len(self.chains), n_max), dtype=np.float32)
+        self._streams = np.full((src.channels + len(self.chains), n_max), 0.0, dtype=np.float32)
         self.tap = None
         if tap_seconds > 0:
             self.tap = Tap(self.rate_hz, list(src.channel_names) + [c.name for c in self.chains],
