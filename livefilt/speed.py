@@ -159,7 +159,7 @@ def channel_rows(channels: int, quick: bool = False) -> list[dict]:
     import soundfile  # only here: the other measures need no audio library
 
     fs, cores = 192000.0, max(1, min(os.cpu_count() or 1, 2 * channels))
-    seconds = 2.0 if quick else 8.0
+    seconds = 4.0 if quick else 8.0
     base = demo_config().to_mapping()
     n = int(fs * seconds)
     bench = _with_rate(demo_config(), fs)
@@ -167,7 +167,7 @@ def channel_rows(channels: int, quick: bool = False) -> list[dict]:
     rng = np.random.default_rng(1057)
     frames = (pd[:, None] + rng.normal(0.0, 1e-3, (n, channels))).astype(np.float32)
     chains = [dict(c, name=f"{c['name']}{i + 1}", input=i) for i in range(channels) for c in base["chains"]]
-    reps = 1 if quick else 3
+    reps = 3  # alternating; a run costs well under a second, a single one swings 1.1-1.9
     with tempfile.TemporaryDirectory() as tmp:
         path = os.path.join(tmp, "inputs.wav")
         soundfile.write(path, frames, int(fs), subtype="FLOAT")
