@@ -46,10 +46,12 @@ log = logging.getLogger(__name__)
 
 
 #: Frames per step for a source not paced by a clock (Engine's ``batch``;
-#: a quarter of it from 8 chains up, in between from 2):
+#: fewer above 16 chains, so a step's outputs stay within 32 MB):
 #: 1 << 18 (1.4 s at 192 kHz, 2 MB of float32 stereo) against 1 << 16
 #: measured here, same run, recorder on: 0.67-0.73 against 0.50-0.54 of
-#: whole-array sosfilt at 192 kHz, 0.56-0.57 against 0.47-0.50 at 48 kHz.
+#: whole-array sosfilt at 192 kHz, 0.56-0.57 against 0.47-0.50 at 48 kHz;
+#: 16 chains at 192 kHz (8 inputs), four runs alternating: one thread 45
+#: against 38 x real time, two threads 63-74 against 48-53.
 FAST_STEP = 1 << 18
 
 
@@ -131,10 +133,10 @@ class Engine:
         # a source not paced by a clock is read in long steps (see batch)
         self._fast = not getattr(src, "realtime", True)
         if batch is None:
-            # many chains: shorter steps, so a step's outputs (8 bytes per
-            # sample and chain) stay near the processor's caches
+            # very many chains: shorter steps, so a step's outputs (8 bytes
+            # per sample and chain) stay within 32 MB
             chains = max(1, len(self.settings.chains))
-            frames = min(FAST_STEP, max(FAST_STEP // 4, 2 * FAST_STEP // chains))
+            frames = min(FAST_STEP, max(FAST_STEP // 4, 16 * FAST_STEP // chains))
             batch = -(-frames // self.block) if self._fast else 32
         self.batch = max(1, int(batch))
         self.output_every = max(1, int(round(self.settings.output.interval_s * self.rate_hz)))
